@@ -1,0 +1,213 @@
+//! Gaussian state estimates and the Kalman update in Joseph form.
+//!
+//! [`Gaussian`] holds a mean and a covariance and guarantees, by construction, that both are
+//! finite and that the covariance is symmetric positive semi-definite. [`PreparedUpdate`]
+//! does the per-track work of a measurement update once (predicted measurement, Jacobian,
+//! innovation covariance, its inverse and the gain), so that gating many detections and
+//! forming many hypotheses against one track costs a few multiply-adds each.
+
+use nalgebra::{SMatrix, SVector};
+
+use crate::error::{Error, ErrorKind, Result};
+use crate::measurement::MeasurementModel;
+use crate::stats;
+
+/// Relative tolerance for the symmetry check of a covariance given to [`Gaussian::new`].
+const SYMMETRY_TOL: f64 = 1e-9;
+
+/// A Gaussian density N(x; m, P) over an N-dimensional state.
+///
+/// Invariants: every entry of `mean` and `cov` is finite, `cov` is symmetric and positive
+/// semi-definite. Units are those of the state (metres and metres per second for the site
+/// frame models).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Gaussian<const N: usize> {
+    mean: SVector<f64, N>,
+    cov: SMatrix<f64, N, N>,
+}
+
+impl<const N: usize> Gaussian<N> {
+    /// A Gaussian with the given mean and covariance.
+    ///
+    /// Errors (kind [`ErrorKind::InvalidInput`]) when an entry is not finite, the covariance is
+    /// not symmetric to 1e-9 relative, or it has a negative eigenvalue (beyond round-off).
+    pub fn new(mean: SVector<f64, N>, cov: SMatrix<f64, N, N>) -> Result<Self> {
+        if mean.iter().any(|v| !v.is_finite()) {
+            return Err(Error::input(format!(
+                "state mean must be finite, got {:?}",
+                mean.as_slice()
+            )));
+        }
+        if cov.iter().any(|v| !v.is_finite()) {
+            return Err(Error::input("state covariance must be finite"));
+        }
+        let scale = cov.iter().fold(0.0_f64, |a, v| a.max(v.abs())).max(1e-300);
+        for i in 0..N {
+            for j in (i + 1)..N {
+                if (cov[(i, j)] - cov[(j, i)]).abs() > SYMMETRY_TOL * scale {
+                    return Err(Error::input(format!(
+                        "state covariance must be symmetric, entry ({i},{j}) is {} but ({j},{i}) is {}",
+                        cov[(i, j)],
+                        cov[(j, i)]
+                    )));
+                }
+            }
+        }
+        let sym = (cov + cov.transpose()) * 0.5;
+        // Positive semi-definite up to round-off: P + ε I must have a Cholesky factor.
+        let jitter = SMatrix::<f64, N, N>::identity() * (1e-9 * scale);
+        if (sym + jitter).cholesky().is_none() {
+            return Err(Error::input(
+                "state covariance must be positive semi-definite (it has a negative eigenvalue)",
+            ));
+        }
+        Ok(Self { mean, cov: sym })
+    }
+
+    /// Internal constructor for results of updates that keep the invariants by construction.
+    pub(crate) fn from_parts(mean: SVector<f64, N>, cov: SMatrix<f64, N, N>) -> Self {
+        Self { mean, cov }
+    }
+
+    /// The mean.
+    pub fn mean(&self) -> &SVector<f64, N> {
+        &self.mean
+    }
+
+    /// The covariance (symmetric, positive semi-definite).
+    pub fn cov(&self) -> &SMatrix<f64, N, N> {
+        &self.cov
+    }
+
+    /// Checks that the state is still usable (finite); used after long chains of updates.
+    pub fn is_finite(&self) -> bool {
+        self.mean.iter().all(|v| v.is_finite()) && self.cov.iter().all(|v| v.is_finite())
+    }
+
+    /// Prepare a measurement update of this (predicted) state with `model`: linearise at the
+    /// mean (EKF) and compute the innovation covariance S = H P Hᵀ + R, its inverse and the
+    /// gain K = P Hᵀ S⁻¹.
+    pub fn prepare<const M: usize, Mm: MeasurementModel<N, M>>(
+        &self,
+        model: &Mm,
+    ) -> Result<PreparedUpdate<N, M>> {
+        let zhat = model.predict(&self.mean);
+        let h = model.jacobian(&self.mean);
+        let pht = self.cov * h.transpose();
+        let s = h * pht + model.noise();
+        PreparedUpdate::from_moments(zhat, s, pht, Some(h), model.noise())
+    }
+}
+
+/// One measurement update of one predicted state, prepared once and applied to any number of
+/// candidate measurements.
+///
+/// For a predicted state N(x; x⁻, P⁻) and measurement model z = h(x) + w, w ~ N(0, R):
+/// ẑ = h(x⁻), S = H P⁻ Hᵀ + R, K = P⁻ Hᵀ S⁻¹, and for an innovation ν = z ⊖ ẑ the updated state
+/// is x⁺ = x⁻ + K ν with the Joseph-form covariance
+/// P⁺ = (I − K H) P⁻ (I − K H)ᵀ + K R Kᵀ (Bucy & Joseph 1968; Bar-Shalom, Li & Kirubarajan,
+/// *Estimation with Applications to Tracking and Navigation*, 2001, §5.2.3), which stays
+/// symmetric positive semi-definite under round-off. For an unscented update (no H) the
+/// equivalent P⁺ = P⁻ − K S Kᵀ is used and symmetrised.
+#[derive(Debug, Clone)]
+pub struct PreparedUpdate<const N: usize, const M: usize> {
+    /// Predicted measurement ẑ.
+    pub zhat: SVector<f64, M>,
+    /// Innovation covariance S (measurement units squared).
+    pub s: SMatrix<f64, M, M>,
+    /// S⁻¹.
+    pub s_inv: SMatrix<f64, M, M>,
+    /// ln det S.
+    pub ln_det_s: f64,
+    /// Kalman gain K.
+    pub gain: SMatrix<f64, N, M>,
+    /// Cross covariance P Hᵀ (or Pxz for the unscented form).
+    pub cross: SMatrix<f64, N, M>,
+    h: Option<SMatrix<f64, M, N>>,
+    r: SMatrix<f64, M, M>,
+}
+
+impl<const N: usize, const M: usize> PreparedUpdate<N, M> {
+    /// Build from predicted measurement moments: ẑ, S, and the cross covariance Pxz
+    /// (= P Hᵀ in the linearised case). `h` is the Jacobian when known (enables Joseph form).
+    pub fn from_moments(
+        zhat: SVector<f64, M>,
+        s: SMatrix<f64, M, M>,
+        cross: SMatrix<f64, N, M>,
+        h: Option<SMatrix<f64, M, N>>,
+        r: SMatrix<f64, M, M>,
+    ) -> Result<Self> {
+        let s = (s + s.transpose()) * 0.5;
+        let chol = s.cholesky().ok_or_else(|| {
+            Error::new(
+                ErrorKind::Singular,
+                "innovation covariance is not positive definite (check the sensor noise settings)",
+            )
+        })?;
+        let mut ln_det_s = 0.0;
+        let l = chol.l_dirty();
+        for i in 0..M {
+            ln_det_s += 2.0 * l[(i, i)].ln();
+        }
+        let s_inv = chol.inverse();
+        let gain = cross * s_inv;
+        Ok(Self {
+            zhat,
+            s,
+            s_inv,
+            ln_det_s,
+            gain,
+            cross,
+            h,
+            r,
+        })
+    }
+
+    /// Squared Mahalanobis distance d² = νᵀ S⁻¹ ν of an innovation.
+    #[inline]
+    pub fn d2(&self, nu: &SVector<f64, M>) -> f64 {
+        (nu.transpose() * self.s_inv * nu)[(0, 0)]
+    }
+
+    /// ln N(ν; 0, S) from the squared distance.
+    #[inline]
+    pub fn ln_likelihood_from_d2(&self, d2: f64) -> f64 {
+        stats::normal_ln_from_parts(d2, self.ln_det_s, M)
+    }
+
+    /// Covariance after an update with a known measurement: Joseph form when the Jacobian is
+    /// known, otherwise P − K S Kᵀ symmetrised.
+    pub fn posterior_cov(&self, prior: &SMatrix<f64, N, N>) -> SMatrix<f64, N, N> {
+        let p = match &self.h {
+            Some(h) => {
+                let i_kh = SMatrix::<f64, N, N>::identity() - self.gain * h;
+                i_kh * prior * i_kh.transpose() + self.gain * self.r * self.gain.transpose()
+            }
+            None => prior - self.gain * self.s * self.gain.transpose(),
+        };
+        (p + p.transpose()) * 0.5
+    }
+
+    /// The updated Gaussian for innovation ν (x⁺ = x⁻ + K ν, Joseph-form covariance).
+    pub fn apply(&self, prior: &Gaussian<N>, nu: &SVector<f64, M>) -> Gaussian<N> {
+        Gaussian::from_parts(prior.mean + self.gain * nu, self.posterior_cov(&prior.cov))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use nalgebra::{Matrix2, Vector2};
+
+    #[test]
+    fn rejects_bad_covariances_with_reasons() {
+        let m = Vector2::new(0.0, 0.0);
+        let e = Gaussian::new(m, Matrix2::new(1.0, 0.0, 0.5, 1.0)).unwrap_err();
+        assert!(e.to_string().contains("symmetric"), "{e}");
+        let e = Gaussian::new(m, Matrix2::new(1.0, 2.0, 2.0, 1.0)).unwrap_err();
+        assert!(e.to_string().contains("positive semi-definite"), "{e}");
+        let e = Gaussian::new(Vector2::new(f64::NAN, 0.0), Matrix2::identity()).unwrap_err();
+        assert!(e.to_string().contains("finite"), "{e}");
+        assert!(Gaussian::new(m, Matrix2::zeros()).is_ok());
+    }
+}

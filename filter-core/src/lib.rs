@@ -1,0 +1,7 @@
+//! placeholder
+pub mod error;
+pub mod gaussian;
+pub mod measurement;
+pub mod motion;
+pub mod stats;
+pub use error::{Error, ErrorKind, Result};
