@@ -162,6 +162,42 @@ fn unreachable_cost_matrix(rows: usize, cols: usize) -> CostMatrix {
     CostMatrix::new(rows, cols, data).expect("all-missed cost matrix is valid")
 }
 
+/// Clusters with more tracks than this are not solved by Murty's method (whose k best
+/// hypotheses say little about a cluster with astronomically many) but by the linear
+/// multi-target approximation [`linear_multitarget`].
+pub(crate) const MURTY_MAX_TRACKS: usize = 32;
+
+/// Linear multi-target approximation for very large clusters, in the spirit of LM-IPDA
+/// (Mušicki & La Scala, IEEE TAES 44(3), 2008): each track is associated on its own, with the
+/// other tracks of the cluster treated as additional clutter. In the scaled weights used here
+/// track σ contributes intensity w_σj / Σ_k w_σk · (1 − w_σ0 / Σ_k w_σk) at detection j (its
+/// probability of having produced j), which is added to the clutter term 1 of that detection:
+/// β_tj ∝ w_tj / (1 + Σ_{σ≠t} π_σj), β_t0 ∝ w_t0. Cost is linear in the number of pairs.
+pub(crate) fn linear_multitarget(c: &[Candidates], n_dets: usize) -> Vec<Marginals> {
+    // π_σj: each track's own single-target probability of detection j.
+    let mut total = vec![0.0f64; n_dets];
+    let own: Vec<Vec<f64>> = c
+        .iter()
+        .map(|t| {
+            let norm = t.missed + t.options.iter().map(|o| o.1).sum::<f64>();
+            t.options.iter().map(|o| o.1 / norm).collect()
+        })
+        .collect();
+    for (t, p) in c.iter().zip(&own) {
+        for (o, pj) in t.options.iter().zip(p) {
+            total[o.0 as usize] += pj;
+        }
+    }
+    c.iter()
+        .zip(&own)
+        .map(|(t, p)| {
+            let opts: Vec<f64> = t.options.iter().zip(p).map(|(o, pj)| o.1 / (1.0 + (total[o.0 as usize] - pj).max(0.0))).collect();
+            let norm = t.missed + opts.iter().sum::<f64>();
+            Marginals { missed: t.missed / norm, options: opts.iter().map(|o| o / norm).collect() }
+        })
+        .collect()
+}
+
 /// Associate one cluster of `c.len()` tracks and `n_dets` detections.
 pub(crate) fn associate(c: &[Candidates], n_dets: usize, method: Method, solver: &mut Solver) -> ClusterOutcome {
     match method {
@@ -185,6 +221,9 @@ pub(crate) fn associate(c: &[Candidates], n_dets: usize, method: Method, solver:
             if count <= max_exact {
                 let (marginals, hypotheses) = exact_marginals(c, n_dets);
                 return ClusterOutcome { marginals, hypotheses, truncated: false };
+            }
+            if c.len() > MURTY_MAX_TRACKS {
+                return ClusterOutcome { marginals: linear_multitarget(c, n_dets), hypotheses: 0, truncated: true };
             }
             let cm = cost_matrix(c, n_dets);
             let hyps = murty::k_best_with(solver, &cm, k_best).unwrap_or_default();

@@ -60,8 +60,9 @@ pub enum AssociationMethod {
 /// How tracks are confirmed and ended.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum Management {
-    /// By existence probability (integrated PDA): confirm when r ≥ `confirm`, end when
-    /// r < `delete` (not in the scan that created the track).
+    /// By existence probability (integrated PDA): confirm when r ≥ `confirm`; a confirmed track
+    /// ends when r < `delete`; a tentative track ends when its existence odds have fallen a
+    /// hundredfold below its odds at birth (a sequential probability ratio test).
     Existence {
         /// Confirmation threshold, in (0, 1).
         confirm: f64,
@@ -368,6 +369,8 @@ pub struct ScanStats {
     pub births: usize,
     /// Tracks ended.
     pub ended: usize,
+    /// Births refused because the tracker holds [`MAX_TRACKS`] tracks.
+    pub births_refused: usize,
 }
 
 /// The picture after one applied scan.
@@ -485,6 +488,31 @@ struct Track {
     misses: u32,
     /// Scans applied since birth.
     age: u32,
+    /// Existence probability at birth.
+    birth_existence: f64,
+}
+
+/// A tentative track ends when its existence odds fall below this fraction of its odds at
+/// birth: a sequential probability ratio test of "object" against "clutter" (Wald 1945;
+/// Blackman & Popoli, *Design and Analysis of Modern Tracking Systems*, 1999, §6.2), so the rule
+/// does not depend on how small the birth existence of a cluttered sensor is.
+const TENTATIVE_ODDS_DROP: f64 = 1e-2;
+
+/// A tentative track not confirmed after this many covered scans ends. In dense clutter the
+/// existence of a clutter-born track performs a random walk with almost no drift (under the
+/// clutter hypothesis the likelihood ratio is a martingale), so without this bound tentative
+/// tracks would accumulate; real objects confirm within a handful of detections.
+const TENTATIVE_MAX_SCANS: u32 = 15;
+
+/// Upper bound on live tracks. Births beyond it are refused (and counted in
+/// [`ScanStats::births_refused`]), which bounds memory whatever the sensors send.
+pub const MAX_TRACKS: usize = 50_000;
+
+/// Pairs lighter than this fraction of their track's missed weight do not join clusters.
+const LINK_MIN: f64 = 1e-2;
+
+fn odds(r: f64) -> f64 {
+    r / (1.0 - r).max(1e-300)
 }
 
 /// Total order on finite f64 times for the reorder buffer.
@@ -803,7 +831,12 @@ impl Tracker {
             let p = tr.state.cov();
             let (x, y) = (tr.state.mean()[0], tr.state.mean()[1]);
             let by_rule = match management {
-                Management::Existence { delete, .. } => tr.age > 0 && tr.existence < delete,
+                Management::Existence { delete, .. } => match tr.status {
+                    TrackStatus::Confirmed => tr.existence < delete,
+                    TrackStatus::Tentative => {
+                        (tr.age > 0 && odds(tr.existence) < TENTATIVE_ODDS_DROP * odds(tr.birth_existence)) || tr.age >= TENTATIVE_MAX_SCANS
+                    }
+                },
                 Management::MOfN { m, n, max_misses } => match tr.status {
                     TrackStatus::Confirmed => tr.misses >= max_misses,
                     TrackStatus::Tentative => {
@@ -907,8 +940,18 @@ impl Tracker {
             }
             i
         }
+        // Only significant pairs link tracks into clusters: a pair whose hypothesis weight is
+        // below LINK_MIN of its track's missed-detection weight changes the marginals of the
+        // other tracks by less than that fraction, so it is left to its own track's cluster.
+        let is_gnn = matches!(self.method, Method::Gnn);
         let mut owner: Vec<u32> = vec![u32::MAX; zs.len()];
-        for &(ti, j, ..) in &pairs {
+        for &(ti, j, _, ln_lr, _) in &pairs {
+            let tr = &self.tracks[ti as usize];
+            let pd = prepared[ti as usize].as_ref().map_or(0.0, |p| p.1);
+            let r = if is_gnn { 1.0 } else { tr.existence };
+            if !is_gnn && r.ln() + ln_lr - (1.0 - r * pd * pg).ln() < LINK_MIN.ln() {
+                continue;
+            }
             let o = owner[j as usize];
             if o == u32::MAX {
                 owner[j as usize] = ti;
@@ -946,7 +989,10 @@ impl Tracker {
             for &ti in members {
                 let tr = &self.tracks[ti as usize];
                 let (_, pd, _) = prepared[ti as usize].as_ref().map(|p| (0, p.1, 0)).unwrap_or((0, 0.0, 0));
-                let r = tr.existence;
+                // JPDA weighs hypotheses with the existence probability (joint IPDA); GNN's
+                // hard decision uses the plain likelihood ratio against 1 − P_D P_G, so that a
+                // new track with a small existence still takes the detection that fits it.
+                let r = if matches!(self.method, Method::Gnn) { 1.0 } else { tr.existence };
                 let ln_miss = (1.0 - r * pd * pg).ln();
                 let range = first_pair[ti as usize]..first_pair[ti as usize] + pair_count[ti as usize];
                 let lns: Vec<f64> = pairs[range.clone()].iter().map(|p| r.ln() + p.3).collect();
@@ -1073,6 +1119,10 @@ impl Tracker {
             if used[j] >= 0.5 {
                 continue;
             }
+            if self.tracks.len() >= MAX_TRACKS {
+                stats.births_refused += 1;
+                continue;
+            }
             let r0 = (1.0 - used[j]) * birth_share;
             let (mean, pos_cov) = match position {
                 None => (Vector2::new(z[0], z[1]), nalgebra::Matrix2::new(noise[(0, 0)], noise[(0, 1)], noise[(1, 0)], noise[(1, 1)])),
@@ -1097,6 +1147,7 @@ impl Tracker {
                 covered: 1,
                 misses: 0,
                 age: 0,
+                birth_existence: r0,
             });
             self.next_id += 1;
             stats.births += 1;
