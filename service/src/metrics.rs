@@ -1,0 +1,367 @@
+//! The service's Prometheus metrics (prefix `plotweave_`), registered once in [`Metrics`] and
+//! exposed at `GET /metrics` in the Prometheus text format 0.0.4.
+//!
+//! Every metric, its meaning, healthy value and an example alert is documented in
+//! `docs/metrics.md`. Per-sensor series are created at start-up (value 0) so that dashboards
+//! and alerts see every configured sensor before its first batch. Batches that name no
+//! configured sensor are counted under `sensor="_unknown"`, never under the name they gave
+//! (which would let a client create unbounded label values).
+
+use std::sync::atomic::AtomicU64;
+
+use prometheus_client::encoding::EncodeLabelSet;
+use prometheus_client::metrics::counter::Counter;
+use prometheus_client::metrics::family::Family;
+use prometheus_client::metrics::gauge::Gauge;
+use prometheus_client::metrics::histogram::{Histogram, exponential_buckets};
+use prometheus_client::registry::Registry;
+
+use crate::error::Code;
+
+/// The `sensor` label value used when a batch names no configured sensor.
+pub const UNKNOWN_SENSOR_LABEL: &str = "_unknown";
+
+/// Labels `{sensor}`.
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct SensorLabels {
+    /// Sensor id.
+    pub sensor: String,
+}
+
+/// Labels `{sensor, reason}` of rejected batches.
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct RejectLabels {
+    /// Sensor id (or `_unknown`).
+    pub sensor: String,
+    /// The rejection's code.
+    pub reason: String,
+}
+
+/// Labels `{status}` of the live track gauge.
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct StatusLabels {
+    /// `tentative` or `confirmed`.
+    pub status: String,
+}
+
+/// Labels `{endpoint}` of the open-connection gauge.
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct EndpointLabels {
+    /// `ingest` or `frames`.
+    pub endpoint: String,
+}
+
+/// Labels of `plotweave_build_info`.
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct BuildLabels {
+    /// Crate version.
+    pub version: String,
+}
+
+type FloatGauge = Gauge<f64, AtomicU64>;
+
+fn cluster_histogram() -> Histogram {
+    // 1, 2, 4, ... 512 tracks
+    Histogram::new(exponential_buckets(1.0, 2.0, 10))
+}
+
+/// Every metric of the service, with the registry that exposes them.
+#[derive(Debug)]
+pub struct Metrics {
+    registry: Registry,
+    /// Batches received (decoded or not), per sensor.
+    pub batches_received: Family<SensorLabels, Counter>,
+    /// Batches refused, per sensor and reason (the rejection code).
+    pub batches_rejected: Family<RejectLabels, Counter>,
+    /// Batches accepted and acknowledged, per sensor.
+    pub batches_acked: Family<SensorLabels, Counter>,
+    /// Detections in accepted batches, per sensor.
+    pub detections: Family<SensorLabels, Counter>,
+    /// Batches missing from the sequence (sum of gap sizes), per sensor.
+    pub seq_gaps: Family<SensorLabels, Counter>,
+    /// Batches refused as repeated or out of sequence, per sensor.
+    pub duplicates: Family<SensorLabels, Counter>,
+    /// Batches refused as older than the reorder window allows, per sensor.
+    pub late_scans: Family<SensorLabels, Counter>,
+    /// Configured clutter rate, false detections per scan, per sensor.
+    pub clutter_rate_configured: Family<SensorLabels, FloatGauge>,
+    /// Clutter rate estimated over the health window (NaN until estimable), per sensor.
+    pub clutter_rate_estimated: Family<SensorLabels, FloatGauge>,
+    /// Configured detection probability, per sensor.
+    pub detection_probability_configured: Family<SensorLabels, FloatGauge>,
+    /// Detection probability estimated over the health window (NaN until estimable).
+    pub detection_probability_estimated: Family<SensorLabels, FloatGauge>,
+    /// Mean normalised innovation squared over the health window (NaN until estimable).
+    pub nis_mean: Family<SensorLabels, FloatGauge>,
+    /// Fraction of NIS samples outside the two-sided 95 % chi-square interval.
+    pub nis_outside_95: Family<SensorLabels, FloatGauge>,
+    /// Live tracks by status.
+    pub tracks: Family<StatusLabels, Gauge>,
+    /// Tracks born, per sensor whose batch made them.
+    pub track_births: Family<SensorLabels, Counter>,
+    /// Tracks ended, per sensor whose batch ended them.
+    pub track_ends: Family<SensorLabels, Counter>,
+    /// Tracks in the largest association cluster of each scan.
+    pub cluster_tracks: Histogram,
+    /// Clusters whose hypothesis enumeration was truncated (k-best instead of exact).
+    pub hypothesis_truncations: Family<SensorLabels, Counter>,
+    /// Seconds from receiving a batch to publishing its frame.
+    pub ingest_to_frame_latency: Histogram,
+    /// Inputs waiting in the engine queue.
+    pub queue_depth: Gauge,
+    /// Scans held in the tracker's reorder buffer.
+    pub reorder_pending: Gauge,
+    /// Connected frame subscribers.
+    pub frame_subscribers: Gauge,
+    /// Frames published.
+    pub frames: Counter,
+    /// Frames a lagging subscriber skipped (summed over subscribers).
+    pub frames_skipped: Counter,
+    /// Open WebSocket connections per endpoint.
+    pub connections: Family<EndpointLabels, Gauge>,
+    /// WebSocket upgrades refused because `max_connections` was reached.
+    pub connections_refused: Counter,
+    /// Runtime sensor parameter changes applied, per sensor.
+    pub sensor_param_changes: Family<SensorLabels, Counter>,
+    /// Always 1; the labels carry the build's version.
+    pub build_info: Family<BuildLabels, Gauge>,
+}
+
+impl Metrics {
+    /// Register every metric; per-sensor series for `sensor_ids` start at 0.
+    pub fn new(sensor_ids: &[String]) -> Self {
+        let mut r = Registry::with_prefix("plotweave");
+        macro_rules! reg {
+            ($name:literal, $help:literal, $metric:expr) => {{
+                let m = $metric;
+                r.register($name, $help, m.clone());
+                m
+            }};
+        }
+        let mut m = Metrics {
+            batches_received: reg!(
+                "batches_received",
+                "Detection batches received (decoded or not)",
+                Family::default()
+            ),
+            batches_rejected: reg!(
+                "batches_rejected",
+                "Detection batches refused, by reason",
+                Family::default()
+            ),
+            batches_acked: reg!(
+                "batches_acked",
+                "Detection batches accepted and acknowledged",
+                Family::default()
+            ),
+            detections: reg!(
+                "detections",
+                "Detections in accepted batches",
+                Family::default()
+            ),
+            seq_gaps: reg!(
+                "seq_gaps",
+                "Batches missing from the per-sensor sequence",
+                Family::default()
+            ),
+            duplicates: reg!(
+                "duplicate_batches",
+                "Batches refused as repeated or out of sequence",
+                Family::default()
+            ),
+            late_scans: reg!(
+                "late_scans",
+                "Batches refused as older than the reorder window allows",
+                Family::default()
+            ),
+            clutter_rate_configured: reg!(
+                "sensor_clutter_rate_configured",
+                "Configured clutter rate (false detections per scan)",
+                Family::default()
+            ),
+            clutter_rate_estimated: reg!(
+                "sensor_clutter_rate_estimated",
+                "Clutter rate estimated over the health window (false detections per scan)",
+                Family::default()
+            ),
+            detection_probability_configured: reg!(
+                "sensor_detection_probability_configured",
+                "Configured detection probability",
+                Family::default()
+            ),
+            detection_probability_estimated: reg!(
+                "sensor_detection_probability_estimated",
+                "Detection probability estimated over the health window",
+                Family::default()
+            ),
+            nis_mean: reg!(
+                "sensor_nis_mean",
+                "Mean normalised innovation squared over the health window",
+                Family::default()
+            ),
+            nis_outside_95: reg!(
+                "sensor_nis_outside_95_ratio",
+                "Fraction of NIS samples outside the 95% chi-square interval",
+                Family::default()
+            ),
+            tracks: reg!("tracks", "Live tracks by status", Family::default()),
+            track_births: reg!("track_births", "Tracks born", Family::default()),
+            track_ends: reg!("track_ends", "Tracks ended", Family::default()),
+            cluster_tracks: reg!(
+                "cluster_tracks",
+                "Tracks in the largest association cluster of a scan",
+                cluster_histogram()
+            ),
+            hypothesis_truncations: reg!(
+                "hypothesis_truncations",
+                "Clusters whose hypotheses were truncated to the k best",
+                Family::default()
+            ),
+            ingest_to_frame_latency: reg!(
+                "ingest_to_frame_latency_seconds",
+                "Time from receiving a batch to publishing its frame",
+                Histogram::new(exponential_buckets(0.0001, 2.0, 16))
+            ),
+            queue_depth: reg!(
+                "engine_queue_depth",
+                "Inputs waiting in the engine queue",
+                Gauge::default()
+            ),
+            reorder_pending: reg!(
+                "reorder_pending_scans",
+                "Scans held in the tracker's reorder buffer",
+                Gauge::default()
+            ),
+            frame_subscribers: reg!(
+                "frame_subscribers",
+                "Connected frame subscribers",
+                Gauge::default()
+            ),
+            frames: reg!("frames", "Track frames published", Counter::default()),
+            frames_skipped: reg!(
+                "frames_skipped",
+                "Frames skipped by lagging subscribers",
+                Counter::default()
+            ),
+            connections: reg!(
+                "connections",
+                "Open WebSocket connections",
+                Family::default()
+            ),
+            connections_refused: reg!(
+                "connections_refused",
+                "WebSocket upgrades refused at max_connections",
+                Counter::default()
+            ),
+            sensor_param_changes: reg!(
+                "sensor_param_changes",
+                "Runtime sensor parameter changes applied",
+                Family::default()
+            ),
+            build_info: reg!("build", "Build information (value 1)", Family::default()),
+            registry: Registry::default(),
+        };
+        m.registry = r;
+        m.build_info
+            .get_or_create(&BuildLabels {
+                version: env!("CARGO_PKG_VERSION").to_string(),
+            })
+            .set(1);
+        for status in ["tentative", "confirmed"] {
+            let _ = m.tracks.get_or_create(&StatusLabels {
+                status: status.into(),
+            });
+        }
+        for endpoint in ["ingest", "frames"] {
+            let _ = m.connections.get_or_create(&EndpointLabels {
+                endpoint: endpoint.into(),
+            });
+        }
+        for id in sensor_ids {
+            let l = sensor(id);
+            for f in [
+                &m.batches_received,
+                &m.batches_acked,
+                &m.detections,
+                &m.seq_gaps,
+                &m.duplicates,
+                &m.late_scans,
+                &m.track_births,
+                &m.track_ends,
+                &m.hypothesis_truncations,
+                &m.sensor_param_changes,
+            ] {
+                let _ = f.get_or_create(&l);
+            }
+            for g in [
+                &m.clutter_rate_estimated,
+                &m.detection_probability_estimated,
+                &m.nis_mean,
+                &m.nis_outside_95,
+            ] {
+                g.get_or_create(&l).set(f64::NAN);
+            }
+        }
+        m
+    }
+
+    /// The Prometheus text exposition (format 0.0.4) of every metric.
+    pub fn encode(&self) -> String {
+        let mut out = String::with_capacity(16 * 1024);
+        // Writing to a String cannot fail.
+        let _ = prometheus_client::encoding::prometheus_text::encode(&mut out, &self.registry);
+        out
+    }
+
+    /// Count a refused batch (also counts duplicates and late scans in their own series).
+    pub fn count_rejection(&self, sensor_label: &str, code: Code) {
+        self.batches_rejected
+            .get_or_create(&RejectLabels {
+                sensor: sensor_label.to_string(),
+                reason: code.as_str().to_string(),
+            })
+            .inc();
+        match code {
+            Code::DuplicateSeq => {
+                self.duplicates.get_or_create(&sensor(sensor_label)).inc();
+            }
+            Code::LateScan => {
+                self.late_scans.get_or_create(&sensor(sensor_label)).inc();
+            }
+            _ => {}
+        }
+    }
+}
+
+/// The `{sensor}` label set of `id`.
+pub fn sensor(id: &str) -> SensorLabels {
+    SensorLabels {
+        sensor: id.to_string(),
+    }
+}
+
+/// The content type of [`Metrics::encode`]'s output.
+pub const CONTENT_TYPE: &str = prometheus_client::encoding::prometheus_text::CONTENT_TYPE;
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn exposition_has_prefix_and_per_sensor_series() {
+        let m = Metrics::new(&["a-radar".to_string()]);
+        m.batches_received.get_or_create(&sensor("a-radar")).inc();
+        m.count_rejection("a-radar", Code::DuplicateSeq);
+        let text = m.encode();
+        assert!(
+            text.contains("plotweave_batches_received_total{sensor=\"a-radar\"} 1"),
+            "{text}"
+        );
+        assert!(text.contains("plotweave_duplicate_batches_total{sensor=\"a-radar\"} 1"));
+        assert!(text.contains(
+            "plotweave_batches_rejected_total{sensor=\"a-radar\",reason=\"duplicate_seq\"} 1"
+        ));
+        assert!(text.contains("plotweave_build{version=\""));
+        assert!(text.contains("plotweave_sensor_nis_mean{sensor=\"a-radar\"} NaN"));
+    }
+}
