@@ -53,11 +53,18 @@ impl DetectionProbability {
             Self::Constant(p) => check_prob("detection probability", *p, false, true).map(|_| ()),
             Self::ByRange(pts) => {
                 if pts.is_empty() {
-                    return Err(Error::param("detection probability table must not be empty"));
+                    return Err(Error::param(
+                        "detection probability table must not be empty",
+                    ));
                 }
                 for (i, &(r, p)) in pts.iter().enumerate() {
                     check_non_negative(&format!("detection probability table range #{i} (m)"), r)?;
-                    check_prob(&format!("detection probability table value #{i}"), p, false, true)?;
+                    check_prob(
+                        &format!("detection probability table value #{i}"),
+                        p,
+                        false,
+                        true,
+                    )?;
                     if i > 0 && r <= pts[i - 1].0 {
                         return Err(Error::param(format!(
                             "detection probability table ranges must increase, #{i} is {r} after {}",
@@ -124,16 +131,32 @@ impl Region {
     /// Validate the geometry.
     pub fn validate(&self) -> Result<()> {
         match *self {
-            Self::Rect { x_min, x_max, y_min, y_max } => {
-                if ![x_min, x_max, y_min, y_max].iter().all(|v| v.is_finite()) || x_min >= x_max || y_min >= y_max {
+            Self::Rect {
+                x_min,
+                x_max,
+                y_min,
+                y_max,
+            } => {
+                if ![x_min, x_max, y_min, y_max].iter().all(|v| v.is_finite())
+                    || x_min >= x_max
+                    || y_min >= y_max
+                {
                     return Err(Error::param(format!(
                         "field of view rectangle must have x_min < x_max and y_min < y_max, got x [{x_min}, {x_max}], y [{y_min}, {y_max}]"
                     )));
                 }
             }
-            Self::Sector { origin, min_range, max_range, bearing_start, bearing_extent } => {
+            Self::Sector {
+                origin,
+                min_range,
+                max_range,
+                bearing_start,
+                bearing_extent,
+            } => {
                 if !origin.iter().all(|v| v.is_finite()) || !bearing_start.is_finite() {
-                    return Err(Error::param("field of view sector origin and start bearing must be finite"));
+                    return Err(Error::param(
+                        "field of view sector origin and start bearing must be finite",
+                    ));
                 }
                 check_non_negative("field of view minimum range (m)", min_range)?;
                 check_positive("field of view maximum range (m)", max_range)?;
@@ -156,11 +179,24 @@ impl Region {
     /// Whether the site-frame point (x, y) (m) is inside.
     pub fn contains(&self, x: f64, y: f64) -> bool {
         match *self {
-            Self::Rect { x_min, x_max, y_min, y_max } => x >= x_min && x <= x_max && y >= y_min && y <= y_max,
-            Self::Sector { origin, min_range, max_range, bearing_start, bearing_extent } => {
+            Self::Rect {
+                x_min,
+                x_max,
+                y_min,
+                y_max,
+            } => x >= x_min && x <= x_max && y >= y_min && y <= y_max,
+            Self::Sector {
+                origin,
+                min_range,
+                max_range,
+                bearing_start,
+                bearing_extent,
+            } => {
                 let (dx, dy) = (x - origin[0], y - origin[1]);
                 let r = dx.hypot(dy);
-                r >= min_range && r <= max_range && self.bearing_inside(bearing_of(dx, dy), bearing_start, bearing_extent)
+                r >= min_range
+                    && r <= max_range
+                    && self.bearing_inside(bearing_of(dx, dy), bearing_start, bearing_extent)
             }
         }
     }
@@ -172,8 +208,20 @@ impl Region {
     /// Whether a polar measurement (range m, bearing rad) is inside a sector field of view.
     pub fn contains_polar(&self, range: f64, bearing: f64) -> bool {
         match *self {
-            Self::Sector { min_range, max_range, bearing_start, bearing_extent, .. } => {
-                range >= min_range && range <= max_range && self.bearing_inside(bearing.rem_euclid(2.0 * PI), bearing_start, bearing_extent)
+            Self::Sector {
+                min_range,
+                max_range,
+                bearing_start,
+                bearing_extent,
+                ..
+            } => {
+                range >= min_range
+                    && range <= max_range
+                    && self.bearing_inside(
+                        bearing.rem_euclid(2.0 * PI),
+                        bearing_start,
+                        bearing_extent,
+                    )
             }
             Self::Rect { .. } => false,
         }
@@ -183,8 +231,18 @@ impl Region {
     /// (r_max − r_min) Δb (m rad) for a sector.
     pub fn measurement_volume(&self) -> f64 {
         match *self {
-            Self::Rect { x_min, x_max, y_min, y_max } => (x_max - x_min) * (y_max - y_min),
-            Self::Sector { min_range, max_range, bearing_extent, .. } => (max_range - min_range) * bearing_extent.min(2.0 * PI),
+            Self::Rect {
+                x_min,
+                x_max,
+                y_min,
+                y_max,
+            } => (x_max - x_min) * (y_max - y_min),
+            Self::Sector {
+                min_range,
+                max_range,
+                bearing_extent,
+                ..
+            } => (max_range - min_range) * bearing_extent.min(2.0 * PI),
         }
     }
 
@@ -192,7 +250,12 @@ impl Region {
     pub fn area(&self) -> f64 {
         match *self {
             Self::Rect { .. } => self.measurement_volume(),
-            Self::Sector { min_range, max_range, bearing_extent, .. } => {
+            Self::Sector {
+                min_range,
+                max_range,
+                bearing_extent,
+                ..
+            } => {
                 0.5 * bearing_extent.min(2.0 * PI) * (max_range * max_range - min_range * min_range)
             }
         }
@@ -216,7 +279,11 @@ impl Region {
     /// Centre bearing of a sector (rad), for display; `None` for a rectangle.
     pub fn centre_bearing(&self) -> Option<f64> {
         match *self {
-            Self::Sector { bearing_start, bearing_extent, .. } => Some(wrap_angle(bearing_start + bearing_extent / 2.0).rem_euclid(2.0 * PI)),
+            Self::Sector {
+                bearing_start,
+                bearing_extent,
+                ..
+            } => Some(wrap_angle(bearing_start + bearing_extent / 2.0).rem_euclid(2.0 * PI)),
             Self::Rect { .. } => None,
         }
     }
@@ -231,11 +298,21 @@ impl Region {
 ///
 /// Errors when the slices differ in length or a parameter is out of range.
 pub fn scan_log_likelihood(ln_g: &[f64], ln_fc: &[f64], pd: f64, clutter_rate: f64) -> Result<f64> {
-    Ok(stats::log_sum_exp(&hypothesis_log_terms(ln_g, ln_fc, pd, clutter_rate)?))
+    Ok(stats::log_sum_exp(&hypothesis_log_terms(
+        ln_g,
+        ln_fc,
+        pd,
+        clutter_rate,
+    )?))
 }
 
 /// The m + 1 terms ln [p(Z | θ, m, x) p(θ, m | x)] of [`scan_log_likelihood`], θ = 0 first.
-pub fn hypothesis_log_terms(ln_g: &[f64], ln_fc: &[f64], pd: f64, clutter_rate: f64) -> Result<Vec<f64>> {
+pub fn hypothesis_log_terms(
+    ln_g: &[f64],
+    ln_fc: &[f64],
+    pd: f64,
+    clutter_rate: f64,
+) -> Result<Vec<f64>> {
     if ln_g.len() != ln_fc.len() {
         return Err(Error::input(format!(
             "scan likelihood needs one clutter density per detection, got {} likelihoods and {} densities",
@@ -258,7 +335,12 @@ pub fn hypothesis_log_terms(ln_g: &[f64], ln_fc: &[f64], pd: f64, clutter_rate: 
 
 /// Normalised association probabilities β_θ = p(θ | Z, m, x), θ = 0 first, from the literal
 /// hypothesis sum of [`scan_log_likelihood`].
-pub fn hypothesis_weights(ln_g: &[f64], ln_fc: &[f64], pd: f64, clutter_rate: f64) -> Result<Vec<f64>> {
+pub fn hypothesis_weights(
+    ln_g: &[f64],
+    ln_fc: &[f64],
+    pd: f64,
+    clutter_rate: f64,
+) -> Result<Vec<f64>> {
     let terms = hypothesis_log_terms(ln_g, ln_fc, pd, clutter_rate)?;
     let total = stats::log_sum_exp(&terms);
     Ok(terms.iter().map(|t| (t - total).exp()).collect())
@@ -268,7 +350,12 @@ pub fn hypothesis_weights(ln_g: &[f64], ln_fc: &[f64], pd: f64, clutter_rate: f6
 /// β₀ ∝ 1 − P_D P_G, βᵢ ∝ P_D g(zᵢ | x) / κ(zᵢ) for the gated detections i, where
 /// κ(z) = λ̄_c f_c(z) is the clutter intensity. `ln_g[i]` = ln g(zᵢ | x), `ln_kappa[i]` = ln κ(zᵢ).
 /// With `gate_probability` = 1 this equals [`hypothesis_weights`] exactly.
-pub fn association_weights(ln_g: &[f64], ln_kappa: &[f64], pd: f64, gate_probability: f64) -> Vec<f64> {
+pub fn association_weights(
+    ln_g: &[f64],
+    ln_kappa: &[f64],
+    pd: f64,
+    gate_probability: f64,
+) -> Vec<f64> {
     let mut terms = Vec::with_capacity(ln_g.len() + 1);
     terms.push((1.0 - pd * gate_probability).ln());
     for (g, k) in ln_g.iter().zip(ln_kappa) {
@@ -309,7 +396,11 @@ mod tests {
     #[test]
     fn pda_weights_match_reference_and_full_likelihood_in_gate() {
         let s: Matrix2<f64> = Matrix2::new(25.0, 5.0, 5.0, 16.0);
-        let nus = [Vector2::new(1.0, 2.0), Vector2::new(-3.0, 4.0), Vector2::new(10.0, -5.0)];
+        let nus = [
+            Vector2::new(1.0, 2.0),
+            Vector2::new(-3.0, 4.0),
+            Vector2::new(10.0, -5.0),
+        ];
         let lam: f64 = 1e-3;
         let gate = crate::gating::Gate::new(0.99, 2).unwrap();
         let ln_det = s.determinant().ln();
@@ -317,12 +408,21 @@ mod tests {
             .iter()
             .map(|n| crate::stats::mvn_ln_pdf(n, &Vector2::zeros(), &s).unwrap())
             .collect();
-        let want_n = [7.231273773697147e-03, 3.390854200683037e-03, 2.172040306561580e-04];
+        let want_n = [
+            7.231273773697147e-03,
+            3.390854200683037e-03,
+            2.172040306561580e-04,
+        ];
         for (g, w) in ln_g.iter().zip(want_n) {
             assert!((g.exp() / w - 1.0).abs() < 1e-12);
         }
         let beta = association_weights(&ln_g, &[lam.ln(); 3], 0.9, 0.99);
-        let want = [0.011049837112214, 0.659761078732637, 0.309371999357167, 0.019817084797983];
+        let want = [
+            0.011049837112214,
+            0.659761078732637,
+            0.309371999357167,
+            0.019817084797983,
+        ];
         for (b, w) in beta.iter().zip(want) {
             assert!((b - w).abs() < 1e-12, "{beta:?}");
         }
@@ -373,7 +473,13 @@ mod tests {
         }
         assert!((total - 1.0).abs() < 1e-9);
         assert!(fov.contains(0.0, 5000.0) && !fov.contains(0.0, 50.0));
-        let narrow = Region::Sector { origin: [0.0, 0.0], min_range: 0.0, max_range: 1000.0, bearing_start: 350f64.to_radians(), bearing_extent: 20f64.to_radians() };
+        let narrow = Region::Sector {
+            origin: [0.0, 0.0],
+            min_range: 0.0,
+            max_range: 1000.0,
+            bearing_start: 350f64.to_radians(),
+            bearing_extent: 20f64.to_radians(),
+        };
         assert!(narrow.contains(0.0, 500.0) && !narrow.contains(500.0, 0.0));
         assert!(narrow.contains_polar(500.0, 5f64.to_radians()));
     }
@@ -386,9 +492,17 @@ mod tests {
         assert!((p.at_range(5000.0) - 0.7).abs() < 1e-12);
         assert_eq!(p.at_range(9000.0), 0.5);
         let bad = DetectionProbability::ByRange(vec![(0.0, 0.9), (0.0, 0.8)]);
-        assert!(bad.validate().unwrap_err().to_string().contains("must increase"));
+        assert!(
+            bad.validate()
+                .unwrap_err()
+                .to_string()
+                .contains("must increase")
+        );
         assert_eq!(
-            DetectionProbability::Constant(1.3).validate().unwrap_err().to_string(),
+            DetectionProbability::Constant(1.3)
+                .validate()
+                .unwrap_err()
+                .to_string(),
             "detection probability must be in (0, 1], got 1.3"
         );
     }

@@ -81,7 +81,11 @@ pub type Result<T> = std::result::Result<T, Error>;
 ///
 /// `name` is the parameter's human name, used in the message.
 pub(crate) fn check_prob(name: &str, value: f64, allow_zero: bool, allow_one: bool) -> Result<f64> {
-    let lo_ok = if allow_zero { value >= 0.0 } else { value > 0.0 };
+    let lo_ok = if allow_zero {
+        value >= 0.0
+    } else {
+        value > 0.0
+    };
     let hi_ok = if allow_one { value <= 1.0 } else { value < 1.0 };
     if value.is_finite() && lo_ok && hi_ok {
         Ok(value)
@@ -123,7 +127,10 @@ mod tests {
     #[test]
     fn probability_message_names_parameter_and_rule() {
         let e = check_prob("detection probability", 1.3, false, true).unwrap_err();
-        assert_eq!(e.to_string(), "detection probability must be in (0, 1], got 1.3");
+        assert_eq!(
+            e.to_string(),
+            "detection probability must be in (0, 1], got 1.3"
+        );
         assert_eq!(e.kind(), ErrorKind::InvalidParameter);
         assert!(check_prob("p", f64::NAN, true, true).is_err());
         assert_eq!(check_prob("p", 0.0, true, true), Ok(0.0));

@@ -60,7 +60,10 @@ impl CartesianPosition {
 
     /// A full 2×2 noise covariance (m²), which must be symmetric positive definite.
     pub fn with_covariance(r: Matrix2<f64>) -> Result<Self> {
-        if r.iter().any(|v| !v.is_finite()) || (r[(0, 1)] - r[(1, 0)]).abs() > 1e-12 * r.abs().max() || r.cholesky().is_none() {
+        if r.iter().any(|v| !v.is_finite())
+            || (r[(0, 1)] - r[(1, 0)]).abs() > 1e-12 * r.abs().max()
+            || r.cholesky().is_none()
+        {
             return Err(Error::param(
                 "cartesian noise covariance must be finite, symmetric and positive definite",
             ));
@@ -149,7 +152,12 @@ impl<const N: usize> MeasurementModel<N, 2> for RangeBearing {
         h
     }
     fn noise(&self) -> Matrix2<f64> {
-        Matrix2::new(self.sigma_range.powi(2), 0.0, 0.0, self.sigma_bearing.powi(2))
+        Matrix2::new(
+            self.sigma_range.powi(2),
+            0.0,
+            0.0,
+            self.sigma_bearing.powi(2),
+        )
     }
     fn residual(&self, z: &Vector2<f64>, zhat: &Vector2<f64>) -> Vector2<f64> {
         Vector2::new(z[0] - zhat[0], wrap_angle(z[1] - zhat[1]))
@@ -247,7 +255,11 @@ pub fn polar_to_cartesian(
     check_positive("range noise sigma (m)", sigma_range)?;
     check_positive("bearing noise sigma (rad)", sigma_bearing)?;
     let (s, c) = bearing.sin_cos();
-    let (r, sr2, sb2) = (range, sigma_range * sigma_range, sigma_bearing * sigma_bearing);
+    let (r, sr2, sb2) = (
+        range,
+        sigma_range * sigma_range,
+        sigma_bearing * sigma_bearing,
+    );
     let o = Vector2::new(origin[0], origin[1]);
     Ok(match method {
         Conversion::Linearised => {
@@ -266,20 +278,31 @@ pub fn polar_to_cartesian(
             let xx = k * r * r * s * s + h * (1.0 - lp * c2);
             let yy = k * r * r * c * c + h * (1.0 + lp * c2);
             let xy = k * r * r * s * c + h * lp * s2;
-            (o + Vector2::new(r * s, r * c) / lb, Matrix2::new(xx, xy, xy, yy))
+            (
+                o + Vector2::new(r * s, r * c) / lb,
+                Matrix2::new(xx, xy, xy, yy),
+            )
         }
         Conversion::Debiased => {
             let e1 = (-sb2).exp();
             let e_half = (-sb2 / 2.0).exp();
             let mu = Vector2::new(r * s, r * c) * (e1 - e_half);
             let e2 = (-2.0 * sb2).exp();
-            let (ch2, ch1, sh2, sh1) = ((2.0 * sb2).cosh(), sb2.cosh(), (2.0 * sb2).sinh(), sb2.sinh());
+            let (ch2, ch1, sh2, sh1) = (
+                (2.0 * sb2).cosh(),
+                sb2.cosh(),
+                (2.0 * sb2).sinh(),
+                sb2.sinh(),
+            );
             let xx = r * r * e2 * (s * s * (ch2 - ch1) + c * c * (sh2 - sh1))
                 + sr2 * e2 * (s * s * (2.0 * ch2 - ch1) + c * c * (2.0 * sh2 - sh1));
             let yy = r * r * e2 * (c * c * (ch2 - ch1) + s * s * (sh2 - sh1))
                 + sr2 * e2 * (c * c * (2.0 * ch2 - ch1) + s * s * (2.0 * sh2 - sh1));
             let xy = s * c * (-4.0 * sb2).exp() * (sr2 + (r * r + sr2) * (1.0 - sb2.exp()));
-            (o + Vector2::new(r * s, r * c) - mu, Matrix2::new(xx, xy, xy, yy))
+            (
+                o + Vector2::new(r * s, r * c) - mu,
+                Matrix2::new(xx, xy, xy, yy),
+            )
         }
     })
 }
@@ -321,7 +344,9 @@ pub fn unscented_prepare<const N: usize, const M: usize, Mm: MeasurementModel<N,
     let scaled = prior.cov() * (n + lambda);
     let chol = ((scaled + scaled.transpose()) * 0.5 + SMatrix::<f64, N, N>::identity() * 1e-12)
         .cholesky()
-        .ok_or_else(|| Error::input("state covariance is not positive definite for the unscented transform"))?;
+        .ok_or_else(|| {
+            Error::input("state covariance is not positive definite for the unscented transform")
+        })?;
     let l = chol.l();
     let wm0 = lambda / (n + lambda);
     let wc0 = wm0 + 1.0 - params.alpha * params.alpha + params.beta;
@@ -411,19 +436,43 @@ mod tests {
         ];
         for (sb_deg, lin, zu, ru, mua, ra) in cases {
             let sb = sb_deg.to_radians();
-            let (z, c) = polar_to_cartesian([0.0, 0.0], r, b, 10.0, sb, Conversion::Linearised).unwrap();
+            let (z, c) =
+                polar_to_cartesian([0.0, 0.0], r, b, 10.0, sb, Conversion::Linearised).unwrap();
             assert!((z[0] - 1000.0).abs() < 1e-9 && (z[1] - 1732.0508075688772).abs() < 1e-9);
-            assert!(rel(c[(0, 0)], lin[0]) < 1e-10 && rel(c[(0, 1)], lin[1]) < 1e-10 && rel(c[(1, 1)], lin[2]) < 1e-10);
-            let (z, c) = polar_to_cartesian([0.0, 0.0], r, b, 10.0, sb, Conversion::Unbiased).unwrap();
-            assert!(rel(z[0], zu.0) < 1e-9 && rel(z[1], zu.1) < 1e-9, "σ_b={sb_deg}");
-            assert!(rel(c[(0, 0)], ru[0]) < 1e-9 && rel(c[(0, 1)], ru[1]) < 1e-9 && rel(c[(1, 1)], ru[2]) < 1e-9);
-            let (z, c) = polar_to_cartesian([0.0, 0.0], r, b, 10.0, sb, Conversion::Debiased).unwrap();
-            assert!(rel(1000.0 - z[0], mua.0) < 1e-7 && rel(1732.0508075688772 - z[1], mua.1) < 1e-7);
-            assert!(rel(c[(0, 0)], ra[0]) < 1e-9 && rel(c[(0, 1)], ra[1]) < 1e-9 && rel(c[(1, 1)], ra[2]) < 1e-9, "{c}");
+            assert!(
+                rel(c[(0, 0)], lin[0]) < 1e-10
+                    && rel(c[(0, 1)], lin[1]) < 1e-10
+                    && rel(c[(1, 1)], lin[2]) < 1e-10
+            );
+            let (z, c) =
+                polar_to_cartesian([0.0, 0.0], r, b, 10.0, sb, Conversion::Unbiased).unwrap();
+            assert!(
+                rel(z[0], zu.0) < 1e-9 && rel(z[1], zu.1) < 1e-9,
+                "σ_b={sb_deg}"
+            );
+            assert!(
+                rel(c[(0, 0)], ru[0]) < 1e-9
+                    && rel(c[(0, 1)], ru[1]) < 1e-9
+                    && rel(c[(1, 1)], ru[2]) < 1e-9
+            );
+            let (z, c) =
+                polar_to_cartesian([0.0, 0.0], r, b, 10.0, sb, Conversion::Debiased).unwrap();
+            assert!(
+                rel(1000.0 - z[0], mua.0) < 1e-7 && rel(1732.0508075688772 - z[1], mua.1) < 1e-7
+            );
+            assert!(
+                rel(c[(0, 0)], ra[0]) < 1e-9
+                    && rel(c[(0, 1)], ra[1]) < 1e-9
+                    && rel(c[(1, 1)], ra[2]) < 1e-9,
+                "{c}"
+            );
         }
     }
 
-    fn fd<const M: usize, Mm: MeasurementModel<4, M>>(m: &Mm, x: &SVector<f64, 4>) -> SMatrix<f64, M, 4> {
+    fn fd<const M: usize, Mm: MeasurementModel<4, M>>(
+        m: &Mm,
+        x: &SVector<f64, 4>,
+    ) -> SMatrix<f64, M, 4> {
         let mut j = SMatrix::<f64, M, 4>::zeros();
         for c in 0..4 {
             let h = 1e-5;

@@ -62,7 +62,9 @@ pub fn check_dt(dt: f64) -> Result<()> {
     if dt < 0.0 {
         return Err(Error::new(
             ErrorKind::NegativeTimeStep,
-            format!("time step must not be negative, got {dt} s (scans must be applied in time order)"),
+            format!(
+                "time step must not be negative, got {dt} s (scans must be applied in time order)"
+            ),
         ));
     }
     Ok(())
@@ -351,7 +353,10 @@ mod tests {
         let e = m.predict(&g, -0.5).unwrap_err();
         assert_eq!(e.kind(), ErrorKind::NegativeTimeStep);
         assert!(e.to_string().contains("-0.5"));
-        assert_eq!(m.predict(&g, f64::NAN).unwrap_err().kind(), ErrorKind::InvalidInput);
+        assert_eq!(
+            m.predict(&g, f64::NAN).unwrap_err().kind(),
+            ErrorKind::InvalidInput
+        );
     }
 
     #[test]
@@ -409,16 +414,30 @@ mod tests {
                 gain = (prep.gain[(0, 0)], prep.gain[(2, 0)]);
                 g = Gaussian::from_parts(*g.mean(), prep.posterior_cov(g.cov()));
             }
-            assert!((gain.0 - want[0]).abs() < 1e-9, "α for T={t}: {} vs {}", gain.0, want[0]);
-            assert!((gain.1 - want[1]).abs() < 1e-9, "β/T for T={t}: {} vs {}", gain.1, want[1]);
+            assert!(
+                (gain.0 - want[0]).abs() < 1e-9,
+                "α for T={t}: {} vs {}",
+                gain.0,
+                want[0]
+            );
+            assert!(
+                (gain.1 - want[1]).abs() < 1e-9,
+                "β/T for T={t}: {} vs {}",
+                gain.1,
+                want[1]
+            );
         }
     }
 
     // The closed-form α, β from the tracking index λ (Kalata 1984; check-values.md §4).
     #[test]
     fn kalata_closed_form_identity() {
-        for (lam, a, b) in [(0.1, 0.36, 0.08), (1.0, 0.75, 0.5), (2.0, 0.854101966249685, 0.763932022500210)] {
-            let r: f64 = (lam * lam + 8.0 * lam) as f64;
+        for (lam, a, b) in [
+            (0.1, 0.36, 0.08),
+            (1.0, 0.75, 0.5),
+            (2.0, 0.854101966249685, 0.763932022500210),
+        ] {
+            let r: f64 = lam * lam + 8.0 * lam;
             let alpha = (-(lam * lam + 8.0 * lam) + (lam + 4.0) * r.sqrt()) / 8.0;
             let beta = (lam * lam + 4.0 * lam - lam * r.sqrt()) / 4.0;
             assert!((alpha - a).abs() < 1e-12 && (beta - b).abs() < 1e-12);
@@ -440,10 +459,18 @@ mod tests {
         assert!((straight[0] - 30.0).abs() < 1e-12 && (straight[1] - 15.0).abs() < 1e-12);
     }
 
-    fn finite_diff_jacobian(m: &CoordinatedTurn, x: &SVector<f64, 5>, t: f64) -> SMatrix<f64, 5, 5> {
+    fn finite_diff_jacobian(
+        m: &CoordinatedTurn,
+        x: &SVector<f64, 5>,
+        t: f64,
+    ) -> SMatrix<f64, 5, 5> {
         let mut j = SMatrix::<f64, 5, 5>::zeros();
         for c in 0..5 {
-            let h = if c == 4 { 1e-6 } else { 1e-4 * x[c].abs().max(1.0) };
+            let h = if c == 4 {
+                1e-6
+            } else {
+                1e-4 * x[c].abs().max(1.0)
+            };
             let mut xp = *x;
             let mut xm = *x;
             xp[c] += h;
@@ -475,7 +502,9 @@ mod tests {
         let y = m.transition(&x, 4.0);
         assert!((y[0] - (4.0 + 0.5 * 0.5 * 16.0)).abs() < 1e-12);
         assert!((y[3] - (2.0 - 0.2 * 4.0)).abs() < 1e-12);
-        let q = ConstantAcceleration::new(2.0).unwrap().process_noise(&x, 1.0);
+        let q = ConstantAcceleration::new(2.0)
+            .unwrap()
+            .process_noise(&x, 1.0);
         assert!((q[(0, 0)] - 0.1).abs() < 1e-15 && (q[(4, 4)] - 2.0).abs() < 1e-15);
         let _ = (Matrix2::<f64>::zeros(), Vector2::<f64>::zeros());
     }

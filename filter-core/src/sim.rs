@@ -98,18 +98,30 @@ impl Scenario {
         }
         for t in &self.targets {
             if !(t.birth.is_finite() && t.death.is_finite() && t.birth < t.death) {
-                return Err(Error::param(format!("target {}: birth must be before death, got {} and {}", t.name, t.birth, t.death)));
+                return Err(Error::param(format!(
+                    "target {}: birth must be before death, got {} and {}",
+                    t.name, t.birth, t.death
+                )));
             }
             if t.initial.iter().any(|v| !v.is_finite()) {
-                return Err(Error::param(format!("target {}: initial state must be finite", t.name)));
+                return Err(Error::param(format!(
+                    "target {}: initial state must be finite",
+                    t.name
+                )));
             }
             for l in &t.legs {
                 let (d, r) = match *l {
                     Leg::Straight { duration } => (duration, 0.0),
-                    Leg::Turn { duration, rate_deg_s } => (duration, rate_deg_s),
+                    Leg::Turn {
+                        duration,
+                        rate_deg_s,
+                    } => (duration, rate_deg_s),
                 };
                 if !(d.is_finite() && d >= 0.0 && r.is_finite()) {
-                    return Err(Error::param(format!("target {}: legs need finite, non-negative durations and finite rates", t.name)));
+                    return Err(Error::param(format!(
+                        "target {}: legs need finite, non-negative durations and finite rates",
+                        t.name
+                    )));
                 }
             }
         }
@@ -124,12 +136,21 @@ pub fn target_state(target: &SimTarget, t_rel: f64) -> Option<[f64; 4]> {
         return None;
     }
     let ct = CoordinatedTurn::new(0.0, 0.0).ok()?;
-    let mut x = nalgebra::SVector::<f64, 5>::new(target.initial[0], target.initial[1], target.initial[2], target.initial[3], 0.0);
+    let mut x = nalgebra::SVector::<f64, 5>::new(
+        target.initial[0],
+        target.initial[1],
+        target.initial[2],
+        target.initial[3],
+        0.0,
+    );
     let mut left = t_rel - target.birth;
     for leg in &target.legs {
         let (d, rate) = match *leg {
             Leg::Straight { duration } => (duration, 0.0),
-            Leg::Turn { duration, rate_deg_s } => (duration, rate_deg_s),
+            Leg::Turn {
+                duration,
+                rate_deg_s,
+            } => (duration, rate_deg_s),
         };
         let step = d.min(left);
         // clockwise positive here, counter-clockwise positive in the CT model
@@ -183,23 +204,43 @@ impl Simulator {
 
 fn sample_clutter(rng: &mut ChaCha8Rng, cfg: &SensorConfig) -> Vec<Measurement> {
     let n = if cfg.clutter_rate > 0.0 {
-        Poisson::new(cfg.clutter_rate).map(|p| p.sample(rng) as usize).unwrap_or(0)
+        Poisson::new(cfg.clutter_rate)
+            .map(|p| p.sample(rng) as usize)
+            .unwrap_or(0)
     } else {
         0
     };
     let mut out = Vec::with_capacity(n);
     for _ in 0..n {
         let m = match (cfg.kind, cfg.fov) {
-            (SensorKind::Cartesian { .. }, FieldOfView::Rect { x_min, x_max, y_min, y_max }) => {
-                Measurement::Cartesian { x: rng.random_range(x_min..x_max), y: rng.random_range(y_min..y_max) }
-            }
-            (SensorKind::Polar { sigma_range_rate, .. }, FieldOfView::Sector { min_range, max_range, bearing_start_deg, bearing_extent_deg }) => {
-                Measurement::Polar {
-                    range: rng.random_range(min_range..max_range),
-                    bearing_deg: (bearing_start_deg + rng.random_range(0.0..bearing_extent_deg)).rem_euclid(360.0),
-                    range_rate: sigma_range_rate.map(|_| rng.random_range(-50.0..50.0)),
-                }
-            }
+            (
+                SensorKind::Cartesian { .. },
+                FieldOfView::Rect {
+                    x_min,
+                    x_max,
+                    y_min,
+                    y_max,
+                },
+            ) => Measurement::Cartesian {
+                x: rng.random_range(x_min..x_max),
+                y: rng.random_range(y_min..y_max),
+            },
+            (
+                SensorKind::Polar {
+                    sigma_range_rate, ..
+                },
+                FieldOfView::Sector {
+                    min_range,
+                    max_range,
+                    bearing_start_deg,
+                    bearing_extent_deg,
+                },
+            ) => Measurement::Polar {
+                range: rng.random_range(min_range..max_range),
+                bearing_deg: (bearing_start_deg + rng.random_range(0.0..bearing_extent_deg))
+                    .rem_euclid(360.0),
+                range_rate: sigma_range_rate.map(|_| rng.random_range(-50.0..50.0)),
+            },
             _ => continue,
         };
         out.push(m);
@@ -211,7 +252,11 @@ impl Iterator for Simulator {
     type Item = SimScan;
 
     fn next(&mut self) -> Option<SimScan> {
-        let s = (0..self.scenario.sensors.len()).min_by(|&a, &b| self.scan_time(a).total_cmp(&self.scan_time(b)).then(a.cmp(&b)))?;
+        let s = (0..self.scenario.sensors.len()).min_by(|&a, &b| {
+            self.scan_time(a)
+                .total_cmp(&self.scan_time(b))
+                .then(a.cmp(&b))
+        })?;
         let t_rel = self.scan_time(s);
         if self.scenario.duration.is_some_and(|d| t_rel > d) {
             return None;
@@ -221,7 +266,9 @@ impl Iterator for Simulator {
         let mut detections = Vec::new();
         let mut truth = Vec::new();
         for target in &self.scenario.targets {
-            let Some(x) = target_state(target, t_rel) else { continue };
+            let Some(x) = target_state(target, t_rel) else {
+                continue;
+            };
             truth.push((target.name.clone(), x));
             if !in_fov(&cfg, x[0], x[1]) || self.rng.random::<f64>() >= cfg.detection_probability {
                 continue;
@@ -229,9 +276,18 @@ impl Iterator for Simulator {
             let m = match cfg.kind {
                 SensorKind::Cartesian { sigma } => {
                     let n = Normal::new(0.0, sigma).ok()?;
-                    Measurement::Cartesian { x: x[0] + n.sample(&mut self.rng), y: x[1] + n.sample(&mut self.rng) }
+                    Measurement::Cartesian {
+                        x: x[0] + n.sample(&mut self.rng),
+                        y: x[1] + n.sample(&mut self.rng),
+                    }
                 }
-                SensorKind::Polar { x: sx, y: sy, sigma_range, sigma_bearing_deg, sigma_range_rate } => {
+                SensorKind::Polar {
+                    x: sx,
+                    y: sy,
+                    sigma_range,
+                    sigma_bearing_deg,
+                    sigma_range_rate,
+                } => {
                     let (dx, dy) = (x[0] - sx, x[1] - sy);
                     let r = dx.hypot(dy);
                     let b = dx.atan2(dy).to_degrees();
@@ -246,7 +302,11 @@ impl Iterator for Simulator {
                         }
                         None => None,
                     };
-                    Measurement::Polar { range, bearing_deg, range_rate }
+                    Measurement::Polar {
+                        range,
+                        bearing_deg,
+                        range_rate,
+                    }
                 }
             };
             detections.push(m);
@@ -258,7 +318,12 @@ impl Iterator for Simulator {
             detections.swap(i, j);
         }
         Some(SimScan {
-            scan: Scan { sensor: s, time: self.scenario.start + t_rel, tag: self.next_scan[s], detections },
+            scan: Scan {
+                sensor: s,
+                time: self.scenario.start + t_rel,
+                tag: self.next_scan[s],
+                detections,
+            },
             truth,
         })
     }
@@ -266,12 +331,31 @@ impl Iterator for Simulator {
 
 fn in_fov(cfg: &SensorConfig, x: f64, y: f64) -> bool {
     match (cfg.kind, cfg.fov) {
-        (SensorKind::Cartesian { .. }, FieldOfView::Rect { x_min, x_max, y_min, y_max }) => x >= x_min && x <= x_max && y >= y_min && y <= y_max,
-        (SensorKind::Polar { x: sx, y: sy, .. }, FieldOfView::Sector { min_range, max_range, bearing_start_deg, bearing_extent_deg }) => {
+        (
+            SensorKind::Cartesian { .. },
+            FieldOfView::Rect {
+                x_min,
+                x_max,
+                y_min,
+                y_max,
+            },
+        ) => x >= x_min && x <= x_max && y >= y_min && y <= y_max,
+        (
+            SensorKind::Polar { x: sx, y: sy, .. },
+            FieldOfView::Sector {
+                min_range,
+                max_range,
+                bearing_start_deg,
+                bearing_extent_deg,
+            },
+        ) => {
             let (dx, dy) = (x - sx, y - sy);
             let r = dx.hypot(dy);
             let b = dx.atan2(dy).to_degrees().rem_euclid(360.0);
-            r >= min_range && r <= max_range && (bearing_extent_deg >= 360.0 || (b - bearing_start_deg).rem_euclid(360.0) <= bearing_extent_deg)
+            r >= min_range
+                && r <= max_range
+                && (bearing_extent_deg >= 360.0
+                    || (b - bearing_start_deg).rem_euclid(360.0) <= bearing_extent_deg)
         }
         _ => false,
     }
@@ -285,8 +369,19 @@ mod tests {
         SimSensor {
             config: SensorConfig {
                 id: "r".into(),
-                kind: SensorKind::Polar { x: 0.0, y: 0.0, sigma_range: 10.0, sigma_bearing_deg: 0.5, sigma_range_rate: None },
-                fov: FieldOfView::Sector { min_range: 0.0, max_range: 6000.0, bearing_start_deg: 0.0, bearing_extent_deg: 360.0 },
+                kind: SensorKind::Polar {
+                    x: 0.0,
+                    y: 0.0,
+                    sigma_range: 10.0,
+                    sigma_bearing_deg: 0.5,
+                    sigma_range_rate: None,
+                },
+                fov: FieldOfView::Sector {
+                    min_range: 0.0,
+                    max_range: 6000.0,
+                    bearing_start_deg: 0.0,
+                    bearing_extent_deg: 360.0,
+                },
                 detection_probability: 0.9,
                 clutter_rate: 25.0,
                 birth_rate: 0.05,
@@ -298,7 +393,13 @@ mod tests {
 
     #[test]
     fn same_seed_same_scans_and_clutter_count_is_poisson_mean() {
-        let sc = Scenario { sensors: vec![radar()], targets: vec![], start: 1000.0, duration: Some(2000.0), seed: 3 };
+        let sc = Scenario {
+            sensors: vec![radar()],
+            targets: vec![],
+            start: 1000.0,
+            duration: Some(2000.0),
+            seed: 3,
+        };
         let a: Vec<SimScan> = Simulator::new(&sc).unwrap().collect();
         let b: Vec<SimScan> = Simulator::new(&sc).unwrap().collect();
         assert_eq!(a, b);
@@ -314,7 +415,16 @@ mod tests {
     fn turn_legs_follow_circles_clockwise_positive() {
         // 10 m/s north, then a clockwise turn at 9°/s for 20 s (180°) ends heading south,
         // 2 r = 2 · v / ω = 2 · 10 / (π/20) ≈ 127.32 m to the east.
-        let t = SimTarget { name: "a".into(), birth: 0.0, death: 100.0, initial: [0.0, 0.0, 0.0, 10.0], legs: vec![Leg::Turn { duration: 20.0, rate_deg_s: 9.0 }] };
+        let t = SimTarget {
+            name: "a".into(),
+            birth: 0.0,
+            death: 100.0,
+            initial: [0.0, 0.0, 0.0, 10.0],
+            legs: vec![Leg::Turn {
+                duration: 20.0,
+                rate_deg_s: 9.0,
+            }],
+        };
         let x = target_state(&t, 20.0).unwrap();
         assert!((x[0] - 2.0 * 10.0 / (9f64.to_radians())).abs() < 1e-9 && x[1].abs() < 1e-9);
         assert!((x[3] + 10.0).abs() < 1e-9);
@@ -327,9 +437,24 @@ mod tests {
     fn detection_rate_matches_pd() {
         let mut s = radar();
         s.config.clutter_rate = 0.0;
-        let t = SimTarget { name: "a".into(), birth: 0.0, death: 1e9, initial: [1000.0, 1000.0, 0.0, 0.0], legs: vec![] };
-        let sc = Scenario { sensors: vec![s], targets: vec![t], start: 0.0, duration: Some(4000.0), seed: 9 };
-        let n: usize = Simulator::new(&sc).unwrap().map(|s| s.scan.detections.len()).sum();
+        let t = SimTarget {
+            name: "a".into(),
+            birth: 0.0,
+            death: 1e9,
+            initial: [1000.0, 1000.0, 0.0, 0.0],
+            legs: vec![],
+        };
+        let sc = Scenario {
+            sensors: vec![s],
+            targets: vec![t],
+            start: 0.0,
+            duration: Some(4000.0),
+            seed: 9,
+        };
+        let n: usize = Simulator::new(&sc)
+            .unwrap()
+            .map(|s| s.scan.detections.len())
+            .sum();
         // Binomial(2001, 0.9): sd ≈ 13.4; 4 sd.
         assert!((n as f64 - 0.9 * 2001.0).abs() < 54.0, "{n}");
     }

@@ -34,10 +34,25 @@ pub struct SingleSetup<Mo, Me> {
 
 impl<Mo, Me> SingleSetup<Mo, Me> {
     /// A validated setup.
-    pub fn new(motion: Mo, measurement: Me, gate: Gate, detection_probability: f64, clutter_intensity: f64) -> Result<Self> {
+    pub fn new(
+        motion: Mo,
+        measurement: Me,
+        gate: Gate,
+        detection_probability: f64,
+        clutter_intensity: f64,
+    ) -> Result<Self> {
         check_prob("detection probability", detection_probability, false, true)?;
-        check_positive("clutter intensity (per unit measurement volume)", clutter_intensity)?;
-        Ok(Self { motion, measurement, gate, detection_probability, clutter_intensity })
+        check_positive(
+            "clutter intensity (per unit measurement volume)",
+            clutter_intensity,
+        )?;
+        Ok(Self {
+            motion,
+            measurement,
+            gate,
+            detection_probability,
+            clutter_intensity,
+        })
     }
 }
 
@@ -56,7 +71,11 @@ pub struct StepReport {
 
 /// The common first half of a step: predict, prepare the update, gate.
 /// Returns the prior, the prepared update and (index, innovation, d²) of each gated detection.
-type Gated<const N: usize, const M: usize> = (Gaussian<N>, PreparedUpdate<N, M>, Vec<(usize, SVector<f64, M>, f64)>);
+type Gated<const N: usize, const M: usize> = (
+    Gaussian<N>,
+    PreparedUpdate<N, M>,
+    Vec<(usize, SVector<f64, M>, f64)>,
+);
 
 fn predict_and_gate<const N: usize, const M: usize, Mo, Me>(
     setup: &SingleSetup<Mo, Me>,
@@ -68,8 +87,14 @@ where
     Mo: MotionModel<N>,
     Me: MeasurementModel<N, M>,
 {
-    if let Some((i, _)) = scan.iter().enumerate().find(|(_, z)| z.iter().any(|v| !v.is_finite())) {
-        return Err(Error::input(format!("detection {i} of the scan is not finite")));
+    if let Some((i, _)) = scan
+        .iter()
+        .enumerate()
+        .find(|(_, z)| z.iter().any(|v| !v.is_finite()))
+    {
+        return Err(Error::input(format!(
+            "detection {i} of the scan is not finite"
+        )));
     }
     let prior = setup.motion.predict(state, dt)?;
     let prep = prior.prepare(&setup.measurement)?;
@@ -95,7 +120,10 @@ pub struct NearestNeighbour<const N: usize, Mo, Me> {
 impl<const N: usize, Mo: MotionModel<N>, Me> NearestNeighbour<N, Mo, Me> {
     /// A filter starting from `initial`.
     pub fn new(setup: SingleSetup<Mo, Me>, initial: Gaussian<N>) -> Self {
-        Self { setup, state: initial }
+        Self {
+            setup,
+            state: initial,
+        }
     }
 
     /// The current estimate.
@@ -109,7 +137,9 @@ impl<const N: usize, Mo: MotionModel<N>, Me> NearestNeighbour<N, Mo, Me> {
         Me: MeasurementModel<N, M>,
     {
         let (prior, prep, gated) = predict_and_gate(&self.setup, &self.state, dt, scan)?;
-        let best = gated.iter().min_by(|a, b| a.2.total_cmp(&b.2).then(a.0.cmp(&b.0)));
+        let best = gated
+            .iter()
+            .min_by(|a, b| a.2.total_cmp(&b.2).then(a.0.cmp(&b.0)));
         let report = StepReport {
             gated: gated.len(),
             missed_probability: if best.is_some() { 0.0 } else { 1.0 },
@@ -161,7 +191,10 @@ pub fn pda_combine<const N: usize, const M: usize>(
 impl<const N: usize, Mo: MotionModel<N>, Me> Pda<N, Mo, Me> {
     /// A filter starting from `initial`.
     pub fn new(setup: SingleSetup<Mo, Me>, initial: Gaussian<N>) -> Self {
-        Self { setup, state: initial }
+        Self {
+            setup,
+            state: initial,
+        }
     }
 
     /// The current estimate.
@@ -175,9 +208,17 @@ impl<const N: usize, Mo: MotionModel<N>, Me> Pda<N, Mo, Me> {
         Me: MeasurementModel<N, M>,
     {
         let (prior, prep, gated) = predict_and_gate(&self.setup, &self.state, dt, scan)?;
-        let ln_g: Vec<f64> = gated.iter().map(|g| prep.ln_likelihood_from_d2(g.2)).collect();
+        let ln_g: Vec<f64> = gated
+            .iter()
+            .map(|g| prep.ln_likelihood_from_d2(g.2))
+            .collect();
         let ln_k = vec![self.setup.clutter_intensity.ln(); gated.len()];
-        let beta = association_weights(&ln_g, &ln_k, self.setup.detection_probability, self.setup.gate.probability());
+        let beta = association_weights(
+            &ln_g,
+            &ln_k,
+            self.setup.detection_probability,
+            self.setup.gate.probability(),
+        );
         let nus: Vec<SVector<f64, M>> = gated.iter().map(|g| g.1).collect();
         self.state = pda_combine(&prior, &prep, &nus, &beta);
         let nis = if gated.is_empty() {
@@ -189,7 +230,11 @@ impl<const N: usize, Mo: MotionModel<N>, Me> Pda<N, Mo, Me> {
             }
             Some(prep.d2(&nb))
         };
-        Ok(StepReport { gated: gated.len(), missed_probability: beta[0], nis })
+        Ok(StepReport {
+            gated: gated.len(),
+            missed_probability: beta[0],
+            nis,
+        })
     }
 }
 
@@ -207,7 +252,11 @@ pub struct MixtureParams {
 
 impl Default for MixtureParams {
     fn default() -> Self {
-        Self { prune_below: 1e-3, merge_distance: 4.0, max_components: 16 }
+        Self {
+            prune_below: 1e-3,
+            merge_distance: 4.0,
+            max_components: 16,
+        }
     }
 }
 
@@ -216,10 +265,15 @@ impl MixtureParams {
     pub fn validate(&self) -> Result<()> {
         check_prob("mixture prune threshold", self.prune_below, true, false)?;
         if !(self.merge_distance.is_finite() && self.merge_distance >= 0.0) {
-            return Err(Error::param(format!("mixture merge distance must be finite and >= 0, got {}", self.merge_distance)));
+            return Err(Error::param(format!(
+                "mixture merge distance must be finite and >= 0, got {}",
+                self.merge_distance
+            )));
         }
         if self.max_components == 0 {
-            return Err(Error::param("mixture max components must be at least 1, got 0"));
+            return Err(Error::param(
+                "mixture max components must be at least 1, got 0",
+            ));
         }
         Ok(())
     }
@@ -255,9 +309,17 @@ pub fn moment_match<const N: usize>(components: &[(f64, Gaussian<N>)]) -> Gaussi
 
 impl<const N: usize, Mo: MotionModel<N>, Me> GaussianSum<N, Mo, Me> {
     /// A filter starting from one component `initial`.
-    pub fn new(setup: SingleSetup<Mo, Me>, params: MixtureParams, initial: Gaussian<N>) -> Result<Self> {
+    pub fn new(
+        setup: SingleSetup<Mo, Me>,
+        params: MixtureParams,
+        initial: Gaussian<N>,
+    ) -> Result<Self> {
         params.validate()?;
-        Ok(Self { setup, params, components: vec![(1.0, initial)] })
+        Ok(Self {
+            setup,
+            params,
+            components: vec![(1.0, initial)],
+        })
     }
 
     /// The mixture components (weight, Gaussian), weights summing to one, heaviest first.
@@ -301,12 +363,19 @@ impl<const N: usize, Mo: MotionModel<N>, Me> GaussianSum<N, Mo, Me> {
             missed += (w.ln() + ln_miss - total).exp();
         }
         self.components = reduce(children, &self.params);
-        Ok(StepReport { gated: gated_any.len(), missed_probability: missed, nis: None })
+        Ok(StepReport {
+            gated: gated_any.len(),
+            missed_probability: missed,
+            nis: None,
+        })
     }
 }
 
 /// Prune, merge and cap a mixture; returns components heaviest first with weights summing to 1.
-fn reduce<const N: usize>(mut comps: Vec<(f64, Gaussian<N>)>, params: &MixtureParams) -> Vec<(f64, Gaussian<N>)> {
+fn reduce<const N: usize>(
+    mut comps: Vec<(f64, Gaussian<N>)>,
+    params: &MixtureParams,
+) -> Vec<(f64, Gaussian<N>)> {
     let max_w = comps.iter().map(|c| c.0).fold(0.0, f64::max);
     comps.retain(|c| c.0 >= params.prune_below || c.0 == max_w);
     comps.sort_by(|a, b| b.0.total_cmp(&a.0));
@@ -333,7 +402,17 @@ fn reduce<const N: usize>(mut comps: Vec<(f64, Gaussian<N>)>, params: &MixturePa
             }
         }
         let w: f64 = group.iter().map(|c| c.0).sum();
-        out.push((w, if group.len() == 1 { group.pop().map(|c| c.1).unwrap_or_else(|| comps[i].1.clone()) } else { moment_match(&group) }));
+        out.push((
+            w,
+            if group.len() == 1 {
+                group
+                    .pop()
+                    .map(|c| c.1)
+                    .unwrap_or_else(|| comps[i].1.clone())
+            } else {
+                moment_match(&group)
+            },
+        ));
     }
     out.sort_by(|a, b| b.0.total_cmp(&a.0));
     out.truncate(params.max_components);
@@ -355,7 +434,11 @@ mod tests {
     // Fortmann 1988, from memory): H = I, x⁻ = (100, 50), P⁻ = [[20,4],[4,12]], R = [[5,1],[1,4]].
     #[test]
     fn pda_update_matches_worked_example() {
-        let prior = Gaussian::new(Vector2::new(100.0, 50.0), Matrix2::new(20.0, 4.0, 4.0, 12.0)).unwrap();
+        let prior = Gaussian::new(
+            Vector2::new(100.0, 50.0),
+            Matrix2::new(20.0, 4.0, 4.0, 12.0),
+        )
+        .unwrap();
         struct Identity2;
         impl MeasurementModel<2, 2> for Identity2 {
             fn predict(&self, x: &Vector2<f64>) -> Vector2<f64> {
@@ -369,14 +452,31 @@ mod tests {
             }
         }
         let prep = prior.prepare(&Identity2).unwrap();
-        assert!((prep.gain - Matrix2::new(0.8, 0.0, 0.010666666666667, 0.746666666666667)).abs().max() < 1e-12);
-        let nus = [Vector2::new(1.0, 2.0), Vector2::new(-3.0, 4.0), Vector2::new(10.0, -5.0)];
-        let ln_g: Vec<f64> = nus.iter().map(|n| prep.ln_likelihood_from_d2(prep.d2(n))).collect();
+        assert!(
+            (prep.gain - Matrix2::new(0.8, 0.0, 0.010666666666667, 0.746666666666667))
+                .abs()
+                .max()
+                < 1e-12
+        );
+        let nus = [
+            Vector2::new(1.0, 2.0),
+            Vector2::new(-3.0, 4.0),
+            Vector2::new(10.0, -5.0),
+        ];
+        let ln_g: Vec<f64> = nus
+            .iter()
+            .map(|n| prep.ln_likelihood_from_d2(prep.d2(n)))
+            .collect();
         let beta = association_weights(&ln_g, &[1e-3f64.ln(); 3], 0.9, 0.99);
         let post = pda_combine(&prior, &prep, &nus, &beta);
         assert!((post.mean()[0] - 99.943852742913).abs() < 1e-10);
         assert!((post.mean()[1] - 51.834501835647).abs() < 1e-10);
-        let want = Matrix2::new(7.646168113074, -1.036592153897, -1.036592153897, 4.185287460488);
+        let want = Matrix2::new(
+            7.646168113074,
+            -1.036592153897,
+            -1.036592153897,
+            4.185287460488,
+        );
         assert!((post.cov() - want).abs().max() < 1e-10, "{}", post.cov());
     }
 
@@ -392,7 +492,11 @@ mod tests {
     }
 
     fn start() -> Gaussian<4> {
-        Gaussian::new(Vector4::new(0.0, 0.0, 10.0, 0.0), Matrix4::from_diagonal(&Vector4::new(100.0, 100.0, 25.0, 25.0))).unwrap()
+        Gaussian::new(
+            Vector4::new(0.0, 0.0, 10.0, 0.0),
+            Matrix4::from_diagonal(&Vector4::new(100.0, 100.0, 25.0, 25.0)),
+        )
+        .unwrap()
     }
 
     #[test]
@@ -415,17 +519,31 @@ mod tests {
 
     #[test]
     fn gaussian_sum_weights_sum_to_one_and_stay_capped() {
-        let params = MixtureParams { max_components: 4, ..MixtureParams::default() };
+        let params = MixtureParams {
+            max_components: 4,
+            ..MixtureParams::default()
+        };
         let mut gs = GaussianSum::new(setup(), params, start()).unwrap();
         for k in 1..10 {
             let t = k as f64;
-            let scan = [Vector2::new(10.0 * t + 3.0, 1.0), Vector2::new(10.0 * t - 15.0, 12.0), Vector2::new(10.0 * t + 20.0, -20.0)];
+            let scan = [
+                Vector2::new(10.0 * t + 3.0, 1.0),
+                Vector2::new(10.0 * t - 15.0, 12.0),
+                Vector2::new(10.0 * t + 20.0, -20.0),
+            ];
             let r = gs.step(1.0, &scan).unwrap();
             assert!(r.missed_probability >= 0.0 && r.missed_probability <= 1.0);
             let s: f64 = gs.components().iter().map(|c| c.0).sum();
             assert!((s - 1.0).abs() < 1e-12);
             assert!(gs.components().len() <= 4);
         }
-        assert!(MixtureParams { max_components: 0, ..MixtureParams::default() }.validate().is_err());
+        assert!(
+            MixtureParams {
+                max_components: 0,
+                ..MixtureParams::default()
+            }
+            .validate()
+            .is_err()
+        );
     }
 }

@@ -138,7 +138,9 @@ pub fn chi2_quantile(p: f64, dof: usize) -> Result<f64> {
         )));
     }
     if dof == 0 {
-        return Err(Error::param("chi-square degrees of freedom must be at least 1, got 0"));
+        return Err(Error::param(
+            "chi-square degrees of freedom must be at least 1, got 0",
+        ));
     }
     let k = dof as f64;
     // Bracket [lo, hi] with cdf(lo) < p < cdf(hi).
@@ -162,7 +164,7 @@ pub fn chi2_quantile(p: f64, dof: usize) -> Result<f64> {
         }
         let pdf = ((half - 1.0) * x.ln() - x / 2.0 - ln_norm).exp();
         let mut next = x - f / pdf;
-        if !(next > lo && next < hi) || !next.is_finite() {
+        if !(next > lo && next < hi && next.is_finite()) {
             next = 0.5 * (lo + hi);
         }
         if (next - x).abs() <= 1e-15 * x.abs().max(1e-300) {
@@ -256,16 +258,22 @@ pub fn mahalanobis<const M: usize>(
     nu: &SVector<f64, M>,
     s: &SMatrix<f64, M, M>,
 ) -> Result<(f64, f64)> {
-    let chol = s
-        .cholesky()
-        .ok_or_else(|| Error::new(crate::ErrorKind::Singular, "innovation covariance is not positive definite"))?;
+    let chol = s.cholesky().ok_or_else(|| {
+        Error::new(
+            crate::ErrorKind::Singular,
+            "innovation covariance is not positive definite",
+        )
+    })?;
     let l = chol.l_dirty();
     let mut ln_det = 0.0;
     for i in 0..M {
         ln_det += 2.0 * l[(i, i)].ln();
     }
     let y = chol.l().solve_lower_triangular(nu).ok_or_else(|| {
-        Error::new(crate::ErrorKind::Singular, "innovation covariance is singular")
+        Error::new(
+            crate::ErrorKind::Singular,
+            "innovation covariance is singular",
+        )
     })?;
     Ok((y.norm_squared(), ln_det))
 }
@@ -313,8 +321,14 @@ mod tests {
         let table: [(usize, [f64; 4]); 4] = [
             (1, [2.7055434541, 3.8414588207, 6.6348966010, 10.8275661707]),
             (2, [4.6051701860, 5.9914645471, 9.2103403720, 13.8155105580]),
-            (3, [6.2513886312, 7.8147279033, 11.3448667301, 16.2662361962]),
-            (4, [7.7794403397, 9.4877290368, 13.2767041360, 18.4668269529]),
+            (
+                3,
+                [6.2513886312, 7.8147279033, 11.3448667301, 16.2662361962],
+            ),
+            (
+                4,
+                [7.7794403397, 9.4877290368, 13.2767041360, 18.4668269529],
+            ),
         ];
         let nist: [[f64; 4]; 4] = [
             [2.706, 3.841, 6.635, 10.828],
@@ -325,7 +339,11 @@ mod tests {
         for (row, (n, vals)) in table.iter().enumerate() {
             for (col, p) in [0.90, 0.95, 0.99, 0.999].iter().enumerate() {
                 let q = chi2_quantile(*p, *n).unwrap();
-                assert!(rel(q, vals[col]) < 1e-9, "n={n} p={p}: {q} vs {}", vals[col]);
+                assert!(
+                    rel(q, vals[col]) < 1e-9,
+                    "n={n} p={p}: {q} vs {}",
+                    vals[col]
+                );
                 assert!((q - nist[row][col]).abs() < 5e-4, "NIST n={n} p={p}");
             }
         }
@@ -368,17 +386,44 @@ mod tests {
     fn poisson_matches_scipy() {
         let rows = [
             (5.0, 0, 6.737946999085467e-03, 6.737946999085467e-03, -5.0),
-            (5.0, 5, 1.754673697678507e-01, 6.159606548330629e-01, -1.740302180612),
-            (5.0, 25, 1.294589320478487e-10, 9.999999999695e-01, -22.767657412128),
+            (
+                5.0,
+                5,
+                1.754673697678507e-01,
+                6.159606548330629e-01,
+                -1.740302180612,
+            ),
+            (
+                5.0,
+                25,
+                1.294589320478487e-10,
+                9.999999999695e-01,
+                -22.767657412128,
+            ),
             (25.0, 0, 1.388794386496402e-11, 1.388794386496402e-11, -25.0),
-            (25.0, 5, 1.130203765052411e-06, 1.397112107542859e-06, -13.693112618441),
-            (25.0, 25, 7.952295146806541e-02, 5.529214200244148e-01, -2.531709601276),
+            (
+                25.0,
+                5,
+                1.130203765052411e-06,
+                1.397112107542859e-06,
+                -13.693112618441,
+            ),
+            (
+                25.0,
+                25,
+                7.952295146806541e-02,
+                5.529214200244148e-01,
+                -2.531709601276,
+            ),
         ];
         for (mu, k, pmf, cdf, lnpmf) in rows {
             assert!(rel(poisson_pmf(k, mu), pmf) < 1e-12, "pmf μ={mu} k={k}");
             assert!(rel(poisson_cdf(k, mu), cdf) < 1e-11, "cdf μ={mu} k={k}");
             // ln pmf values in the table carry 12 decimals.
-            assert!((poisson_ln_pmf(k, mu) - lnpmf).abs() < 1e-11, "ln pmf μ={mu} k={k}");
+            assert!(
+                (poisson_ln_pmf(k, mu) - lnpmf).abs() < 1e-11,
+                "ln pmf μ={mu} k={k}"
+            );
         }
         assert!(rel(poisson_sf(25, 5.0), 3.049970780085191e-11) < 1e-10);
         assert!(rel(poisson_sf(25, 25.0), 0.4470785799755852) < 1e-10);

@@ -11,7 +11,10 @@ fn jpda() -> TrackerConfig {
 }
 
 fn gnn() -> TrackerConfig {
-    TrackerConfig { association: AssociationMethod::Gnn, ..TrackerConfig::default() }
+    TrackerConfig {
+        association: AssociationMethod::Gnn,
+        ..TrackerConfig::default()
+    }
 }
 
 // One polar radar, P_D = 0.9, λ̄_c = 25 per scan over a 6 km disc, 12 vessels with births and
@@ -25,15 +28,31 @@ fn gnn() -> TrackerConfig {
 fn jpda_mean_gospa_within_1_3x_of_known_association() {
     let mut ratios = Vec::new();
     for seed in [11, 12, 13] {
-        let sc = scenario(vec![sim_sensor(radar("mole-radar", 0.0, 0.0, 0.9, 25.0), 2.0, 0.0)], twelve_vessels(), 600.0, seed);
+        let sc = scenario(
+            vec![sim_sensor(
+                radar("mole-radar", 0.0, 0.0, 0.9, 25.0),
+                2.0,
+                0.0,
+            )],
+            twelve_vessels(),
+            600.0,
+            seed,
+        );
         let yard = known_association_gospa(&sc, &jpda(), 50.0, 0.0);
         let j = mean_gospa(&run(jpda(), &sc), 50.0, 0.0);
         let g = mean_gospa(&run(gnn(), &sc), 50.0, 0.0);
-        eprintln!("seed {seed}: known-association {yard:.2} m, JPDA {j:.2} m ({:.3}x), GNN {g:.2} m ({:.3}x)", j / yard, g / yard);
+        eprintln!(
+            "seed {seed}: known-association {yard:.2} m, JPDA {j:.2} m ({:.3}x), GNN {g:.2} m ({:.3}x)",
+            j / yard,
+            g / yard
+        );
         ratios.push(j / yard);
     }
     let mean = ratios.iter().sum::<f64>() / ratios.len() as f64;
-    assert!(mean < 1.3, "JPDA/known-association GOSPA ratio {mean:.3} (per seed {ratios:?})");
+    assert!(
+        mean < 1.3,
+        "JPDA/known-association GOSPA ratio {mean:.3} (per seed {ratios:?})"
+    );
 }
 
 /// Two vessels on straight paths that cross at 10° (headings 85° and 95°, 8 m/s), the second
@@ -48,11 +67,28 @@ fn crossing(seed: u64, clutter: f64) -> filter_core::sim::Scenario {
         [p[0] - vv[0] * t_cross, p[1] - vv[1] * t_cross, vv[0], vv[1]]
     };
     let targets = vec![
-        SimTarget { name: "skiff-a".into(), birth: 0.0, death: 1e9, initial: start(85.0, 120.0), legs: vec![] },
-        SimTarget { name: "skiff-b".into(), birth: 0.0, death: 1e9, initial: start(95.0, 127.5), legs: vec![] },
+        SimTarget {
+            name: "skiff-a".into(),
+            birth: 0.0,
+            death: 1e9,
+            initial: start(85.0, 120.0),
+            legs: vec![],
+        },
+        SimTarget {
+            name: "skiff-b".into(),
+            birth: 0.0,
+            death: 1e9,
+            initial: start(95.0, 127.5),
+            legs: vec![],
+        },
     ];
     let mut r = radar("inner-radar", 0.0, 0.0, 0.85, clutter);
-    r.fov = FieldOfView::Sector { min_range: 2000.0, max_range: 3000.0, bearing_start_deg: 330.0, bearing_extent_deg: 60.0 };
+    r.fov = FieldOfView::Sector {
+        min_range: 2000.0,
+        max_range: 3000.0,
+        bearing_start_deg: 330.0,
+        bearing_extent_deg: 60.0,
+    };
     r.birth_rate = 0.02;
     scenario(vec![sim_sensor(r, 2.0, 0.0)], targets, 240.0, seed)
 }
@@ -95,10 +131,13 @@ fn crossing_outcome(config: TrackerConfig, sc: &filter_core::sim::Scenario) -> O
 #[test]
 fn crossing_targets_keep_their_ids_with_jpda() {
     let seeds = 20;
-    let mut tally = |cfg: TrackerConfig| {
+    let tally = |cfg: TrackerConfig| {
         let (mut kept, mut swapped, mut broken) = (0, 0, 0);
         for seed in 0..seeds {
-            let cfg = TrackerConfig { initial_velocity_std: 10.0, ..cfg.clone() };
+            let cfg = TrackerConfig {
+                initial_velocity_std: 10.0,
+                ..cfg.clone()
+            };
             match crossing_outcome(cfg, &crossing(100 + seed, 80.0)) {
                 Some(true) => kept += 1,
                 Some(false) => swapped += 1,
@@ -110,8 +149,16 @@ fn crossing_targets_keep_their_ids_with_jpda() {
     let j = tally(jpda());
     let g = tally(gnn());
     eprintln!("crossing over {seeds} seeds (kept, swapped, broken): JPDA {j:?}, GNN {g:?}");
-    assert!(j.1 * 10 <= seeds as usize, "JPDA swapped ids in {} of {seeds} seeds", j.1);
-    assert!(j.0 * 10 >= 9 * seeds as usize, "JPDA kept both ids in only {} of {seeds} seeds", j.0);
+    assert!(
+        j.1 * 10 <= seeds as usize,
+        "JPDA swapped ids in {} of {seeds} seeds",
+        j.1
+    );
+    assert!(
+        j.0 * 10 >= 9 * seeds as usize,
+        "JPDA kept both ids in only {} of {seeds} seeds",
+        j.0
+    );
 }
 
 // Two asynchronous polar radars (periods 2.0 s and 2.5 s, offset 0.7 s) with overlapping
@@ -124,12 +171,20 @@ fn two_asynchronous_radars_give_one_track_per_object() {
             name: format!("ferry-{k}"),
             birth: 0.0,
             death: 1e9,
-            initial: [800.0 + 300.0 * k as f64, 1200.0 + 250.0 * k as f64, 3.0 - k as f64, 2.0],
+            initial: [
+                800.0 + 300.0 * k as f64,
+                1200.0 + 250.0 * k as f64,
+                3.0 - k as f64,
+                2.0,
+            ],
             legs: vec![],
         })
         .collect();
     let sc = scenario(
-        vec![sim_sensor(radar("west-radar", 0.0, 0.0, 0.9, 10.0), 2.0, 0.0), sim_sensor(radar("east-radar", 3000.0, 0.0, 0.85, 10.0), 2.5, 0.7)],
+        vec![
+            sim_sensor(radar("west-radar", 0.0, 0.0, 0.9, 10.0), 2.0, 0.0),
+            sim_sensor(radar("east-radar", 3000.0, 0.0, 0.85, 10.0), 2.5, 0.7),
+        ],
         targets,
         300.0,
         5,
@@ -143,10 +198,17 @@ fn two_asynchronous_radars_give_one_track_per_object() {
             continue;
         }
         counted += 1;
-        let conf: Vec<&TrackView> = p.tracks.iter().filter(|t| t.status == TrackStatus::Confirmed).collect();
+        let conf: Vec<&TrackView> = p
+            .tracks
+            .iter()
+            .filter(|t| t.status == TrackStatus::Confirmed)
+            .collect();
         let mut per_object_ok = true;
         for (_, x) in &s.truth {
-            let near = conf.iter().filter(|t| (t.state[0] - x[0]).hypot(t.state[1] - x[1]) < 50.0).count();
+            let near = conf
+                .iter()
+                .filter(|t| (t.state[0] - x[0]).hypot(t.state[1] - x[1]) < 50.0)
+                .count();
             if near > 1 {
                 duplicated += 1;
             }
@@ -158,8 +220,14 @@ fn two_asynchronous_radars_give_one_track_per_object() {
     }
     // Both sensors must have contributed to the final tracks.
     let last = &r.last().unwrap().1;
-    let fused = last.tracks.iter().filter(|t| t.status == TrackStatus::Confirmed && t.sensors == vec![0, 1]).count();
-    eprintln!("two radars: {good}/{counted} scans with exactly one confirmed track per vessel, {duplicated} duplicate sightings, {fused} tracks fed by both");
+    let fused = last
+        .tracks
+        .iter()
+        .filter(|t| t.status == TrackStatus::Confirmed && t.sensors == vec![0, 1])
+        .count();
+    eprintln!(
+        "two radars: {good}/{counted} scans with exactly one confirmed track per vessel, {duplicated} duplicate sightings, {fused} tracks fed by both"
+    );
     assert_eq!(duplicated, 0, "an object had two confirmed tracks");
     assert!(good as f64 >= 0.98 * counted as f64, "{good}/{counted}");
     assert_eq!(fused, 5);
@@ -169,9 +237,21 @@ fn two_asynchronous_radars_give_one_track_per_object() {
 // form, so equal strings mean equal bits).
 #[test]
 fn pictures_are_bit_identical_across_runs() {
-    let sc = scenario(vec![sim_sensor(radar("mole-radar", 0.0, 0.0, 0.9, 25.0), 2.0, 0.0)], twelve_vessels(), 200.0, 77);
+    let sc = scenario(
+        vec![sim_sensor(
+            radar("mole-radar", 0.0, 0.0, 0.9, 25.0),
+            2.0,
+            0.0,
+        )],
+        twelve_vessels(),
+        200.0,
+        77,
+    );
     for cfg in [jpda(), gnn()] {
-        let a: Vec<String> = run(cfg.clone(), &sc).iter().map(|x| format!("{:?}", x.1)).collect();
+        let a: Vec<String> = run(cfg.clone(), &sc)
+            .iter()
+            .map(|x| format!("{:?}", x.1))
+            .collect();
         let b: Vec<String> = run(cfg, &sc).iter().map(|x| format!("{:?}", x.1)).collect();
         assert_eq!(a, b);
     }

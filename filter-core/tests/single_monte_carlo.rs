@@ -59,14 +59,26 @@ impl Tally {
 }
 
 fn setup() -> SingleSetup<ConstantVelocity, CartesianPosition> {
-    SingleSetup::new(ConstantVelocity::continuous(Q).unwrap(), CartesianPosition::new(SIGMA).unwrap(), Gate::new(0.99, 2).unwrap(), PD, KAPPA).unwrap()
+    SingleSetup::new(
+        ConstantVelocity::continuous(Q).unwrap(),
+        CartesianPosition::new(SIGMA).unwrap(),
+        Gate::new(0.99, 2).unwrap(),
+        PD,
+        KAPPA,
+    )
+    .unwrap()
 }
 
 #[test]
 fn pda_loses_fewer_tracks_than_nn_and_known_association_is_best() {
     let motion = ConstantVelocity::continuous(Q).unwrap();
     let meas = CartesianPosition::new(SIGMA).unwrap();
-    let (mut kf, mut nn, mut pda, mut gs) = (Tally::default(), Tally::default(), Tally::default(), Tally::default());
+    let (mut kf, mut nn, mut pda, mut gs) = (
+        Tally::default(),
+        Tally::default(),
+        Tally::default(),
+        Tally::default(),
+    );
     let mut gate_clutter = (0.0, 0usize);
     let noise = Normal::new(0.0, SIGMA).unwrap();
     for run in 0..RUNS {
@@ -74,7 +86,13 @@ fn pda_loses_fewer_tracks_than_nn_and_known_association_is_best() {
         let mut truth = Vector4::new(0.0, 0.0, 8.0, 3.0);
         let p0 = Matrix4::from_diagonal(&Vector4::new(100.0, 100.0, 4.0, 4.0));
         let init = Gaussian::new(
-            truth + Vector4::new(10.0 * rng.sample::<f64, _>(StandardNormal), 10.0 * rng.sample::<f64, _>(StandardNormal), 2.0 * rng.sample::<f64, _>(StandardNormal), 2.0 * rng.sample::<f64, _>(StandardNormal)),
+            truth
+                + Vector4::new(
+                    10.0 * rng.sample::<f64, _>(StandardNormal),
+                    10.0 * rng.sample::<f64, _>(StandardNormal),
+                    2.0 * rng.sample::<f64, _>(StandardNormal),
+                    2.0 * rng.sample::<f64, _>(StandardNormal),
+                ),
             p0,
         )
         .unwrap();
@@ -90,26 +108,40 @@ fn pda_loses_fewer_tracks_than_nn_and_known_association_is_best() {
             truth = motion.transition(&truth, 1.0) + q_chol.l() * w;
             let mut scan = Vec::new();
             let detected = rng.random::<f64>() < PD;
-            let target_z = Vector2::new(truth[0] + noise.sample(&mut rng), truth[1] + noise.sample(&mut rng));
+            let target_z = Vector2::new(
+                truth[0] + noise.sample(&mut rng),
+                truth[1] + noise.sample(&mut rng),
+            );
             if detected {
                 scan.push(target_z);
             }
-            let n = Poisson::new(KAPPA * (2.0 * HALF).powi(2)).unwrap().sample(&mut rng) as usize;
+            let n = Poisson::new(KAPPA * (2.0 * HALF).powi(2))
+                .unwrap()
+                .sample(&mut rng) as usize;
             for _ in 0..n {
-                scan.push(Vector2::new(truth[0] + rng.random_range(-HALF..HALF), truth[1] + rng.random_range(-HALF..HALF)));
+                scan.push(Vector2::new(
+                    truth[0] + rng.random_range(-HALF..HALF),
+                    truth[1] + rng.random_range(-HALF..HALF),
+                ));
             }
             // Known association: only the target's detection, when there is one.
             k = motion.predict(&k, 1.0).unwrap();
             let prep = k.prepare::<2, _>(&meas).unwrap();
             if detected {
-                let nu = <CartesianPosition as MeasurementModel<4, 2>>::residual(&meas, &target_z, &prep.zhat);
+                let nu = <CartesianPosition as MeasurementModel<4, 2>>::residual(
+                    &meas, &target_z, &prep.zhat,
+                );
                 k = prep.apply(&k, &nu);
             }
             // Regime check: clutter detections inside the PDA filter's gate while it tracks.
             let g = Gate::new(0.99, 2).unwrap();
             let pprior = motion.predict(f_pda.estimate(), 1.0).unwrap();
             let pp = pprior.prepare::<2, _>(&meas).unwrap();
-            let in_gate = scan.iter().skip(usize::from(detected)).filter(|z| g.accepts(pp.d2(&(*z - pp.zhat)))).count();
+            let in_gate = scan
+                .iter()
+                .skip(usize::from(detected))
+                .filter(|z| g.accepts(pp.d2(&(*z - pp.zhat))))
+                .count();
             if !lost[2] {
                 gate_clutter.0 += in_gate as f64;
                 gate_clutter.1 += 1;
@@ -125,17 +157,45 @@ fn pda_loses_fewer_tracks_than_nn_and_known_association_is_best() {
     }
     let per_gate = gate_clutter.0 / gate_clutter.1 as f64;
     eprintln!("clutter detections per PDA gate: {per_gate:.2}");
-    for (name, t) in [("known association", &kf), ("nearest neighbour", &nn), ("PDA", &pda), ("Gaussian sum", &gs)] {
-        eprintln!("{name:>18}: track loss {:5.1} %, RMSE while tracking {:6.2} m", 100.0 * t.rate(), t.rmse());
+    for (name, t) in [
+        ("known association", &kf),
+        ("nearest neighbour", &nn),
+        ("PDA", &pda),
+        ("Gaussian sum", &gs),
+    ] {
+        eprintln!(
+            "{name:>18}: track loss {:5.1} %, RMSE while tracking {:6.2} m",
+            100.0 * t.rate(),
+            t.rmse()
+        );
     }
     // The regime asked for: about two clutter detections per gate.
-    assert!((1.5..3.0).contains(&per_gate), "clutter per gate {per_gate}");
+    assert!(
+        (1.5..3.0).contains(&per_gate),
+        "clutter per gate {per_gate}"
+    );
     // Standard error of a difference of two loss proportions over RUNS runs.
-    let se = |a: f64, b: f64| ((a * (1.0 - a) + b * (1.0 - b)) / RUNS as f64).sqrt().max(1e-3);
-    assert!(nn.rate() - pda.rate() > 3.0 * se(nn.rate(), pda.rate()), "PDA must lose fewer tracks than NN");
-    assert!(nn.rate() - gs.rate() > 3.0 * se(nn.rate(), gs.rate()), "the Gaussian sum must lose fewer tracks than NN");
-    assert_eq!(kf.lost, 0, "the known-association filter never loses the target");
+    let se = |a: f64, b: f64| {
+        ((a * (1.0 - a) + b * (1.0 - b)) / RUNS as f64)
+            .sqrt()
+            .max(1e-3)
+    };
+    assert!(
+        nn.rate() - pda.rate() > 3.0 * se(nn.rate(), pda.rate()),
+        "PDA must lose fewer tracks than NN"
+    );
+    assert!(
+        nn.rate() - gs.rate() > 3.0 * se(nn.rate(), gs.rate()),
+        "the Gaussian sum must lose fewer tracks than NN"
+    );
+    assert_eq!(
+        kf.lost, 0,
+        "the known-association filter never loses the target"
+    );
     for t in [&nn, &pda, &gs] {
-        assert!(kf.rmse() < t.rmse(), "known association must have the smallest RMSE");
+        assert!(
+            kf.rmse() < t.rmse(),
+            "known association must have the smallest RMSE"
+        );
     }
 }

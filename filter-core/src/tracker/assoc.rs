@@ -111,7 +111,13 @@ fn exact_marginals(c: &[Candidates], n_dets: usize) -> (Vec<Marginals>, usize) {
         c,
         used: vec![false; n_dets],
         choice: vec![0; c.len()],
-        acc: c.iter().map(|t| Marginals { missed: 0.0, options: vec![0.0; t.options.len()] }).collect(),
+        acc: c
+            .iter()
+            .map(|t| Marginals {
+                missed: 0.0,
+                options: vec![0.0; t.options.len()],
+            })
+            .collect(),
         total: 0.0,
         count: 0,
     };
@@ -191,19 +197,38 @@ pub(crate) fn linear_multitarget(c: &[Candidates], n_dets: usize) -> Vec<Margina
     c.iter()
         .zip(&own)
         .map(|(t, p)| {
-            let opts: Vec<f64> = t.options.iter().zip(p).map(|(o, pj)| o.1 / (1.0 + (total[o.0 as usize] - pj).max(0.0))).collect();
+            let opts: Vec<f64> = t
+                .options
+                .iter()
+                .zip(p)
+                .map(|(o, pj)| o.1 / (1.0 + (total[o.0 as usize] - pj).max(0.0)))
+                .collect();
             let norm = t.missed + opts.iter().sum::<f64>();
-            Marginals { missed: t.missed / norm, options: opts.iter().map(|o| o / norm).collect() }
+            Marginals {
+                missed: t.missed / norm,
+                options: opts.iter().map(|o| o / norm).collect(),
+            }
         })
         .collect()
 }
 
 /// Associate one cluster of `c.len()` tracks and `n_dets` detections.
-pub(crate) fn associate(c: &[Candidates], n_dets: usize, method: Method, solver: &mut Solver) -> ClusterOutcome {
+pub(crate) fn associate(
+    c: &[Candidates],
+    n_dets: usize,
+    method: Method,
+    solver: &mut Solver,
+) -> ClusterOutcome {
     match method {
         Method::Gnn => {
             let cm = cost_matrix(c, n_dets);
-            let mut marginals: Vec<Marginals> = c.iter().map(|t| Marginals { missed: 1.0, options: vec![0.0; t.options.len()] }).collect();
+            let mut marginals: Vec<Marginals> = c
+                .iter()
+                .map(|t| Marginals {
+                    missed: 1.0,
+                    options: vec![0.0; t.options.len()],
+                })
+                .collect();
             if let Ok(a) = solver.solve(&cm) {
                 for (t, &col) in a.row_to_col.iter().enumerate() {
                     if col < n_dets {
@@ -214,20 +239,38 @@ pub(crate) fn associate(c: &[Candidates], n_dets: usize, method: Method, solver:
                     }
                 }
             }
-            ClusterOutcome { marginals, hypotheses: 1, truncated: false }
+            ClusterOutcome {
+                marginals,
+                hypotheses: 1,
+                truncated: false,
+            }
         }
         Method::Jpda { max_exact, k_best } => {
             let count = count_hypotheses(c, n_dets, max_exact);
             if count <= max_exact {
                 let (marginals, hypotheses) = exact_marginals(c, n_dets);
-                return ClusterOutcome { marginals, hypotheses, truncated: false };
+                return ClusterOutcome {
+                    marginals,
+                    hypotheses,
+                    truncated: false,
+                };
             }
             if c.len() > MURTY_MAX_TRACKS {
-                return ClusterOutcome { marginals: linear_multitarget(c, n_dets), hypotheses: 0, truncated: true };
+                return ClusterOutcome {
+                    marginals: linear_multitarget(c, n_dets),
+                    hypotheses: 0,
+                    truncated: true,
+                };
             }
             let cm = cost_matrix(c, n_dets);
             let hyps = murty::k_best_with(solver, &cm, k_best).unwrap_or_default();
-            let mut acc: Vec<Marginals> = c.iter().map(|t| Marginals { missed: 0.0, options: vec![0.0; t.options.len()] }).collect();
+            let mut acc: Vec<Marginals> = c
+                .iter()
+                .map(|t| Marginals {
+                    missed: 0.0,
+                    options: vec![0.0; t.options.len()],
+                })
+                .collect();
             let best = hyps.first().map(|h| h.cost).unwrap_or(0.0);
             let mut total = 0.0;
             for h in &hyps {
@@ -244,7 +287,11 @@ pub(crate) fn associate(c: &[Candidates], n_dets: usize, method: Method, solver:
                 }
             }
             normalise(&mut acc, total);
-            ClusterOutcome { marginals: acc, hypotheses: hyps.len(), truncated: true }
+            ClusterOutcome {
+                marginals: acc,
+                hypotheses: hyps.len(),
+                truncated: true,
+            }
         }
     }
 }
@@ -255,15 +302,27 @@ mod tests {
 
     fn two_tracks() -> Vec<Candidates> {
         vec![
-            Candidates { missed: 0.1, options: vec![(0, 1.0), (1, 0.4)] },
-            Candidates { missed: 0.2, options: vec![(0, 0.5), (1, 1.0), (2, 0.3)] },
+            Candidates {
+                missed: 0.1,
+                options: vec![(0, 1.0), (1, 0.4)],
+            },
+            Candidates {
+                missed: 0.2,
+                options: vec![(0, 0.5), (1, 1.0), (2, 0.3)],
+            },
         ]
     }
 
     // Brute force written from the definition: enumerate every assignment of {missed, det} to
     // each track with distinct detections, multiply, normalise.
     fn brute(c: &[Candidates], n: usize) -> Vec<Marginals> {
-        let mut acc: Vec<Marginals> = c.iter().map(|t| Marginals { missed: 0.0, options: vec![0.0; t.options.len()] }).collect();
+        let mut acc: Vec<Marginals> = c
+            .iter()
+            .map(|t| Marginals {
+                missed: 0.0,
+                options: vec![0.0; t.options.len()],
+            })
+            .collect();
         let mut total = 0.0;
         let sizes: Vec<usize> = c.iter().map(|t| t.options.len() + 1).collect();
         let mut idx = vec![0usize; c.len()];
@@ -286,7 +345,11 @@ mod tests {
             if ok {
                 total += w;
                 for (t, &k) in idx.iter().enumerate() {
-                    if k == 0 { acc[t].missed += w } else { acc[t].options[k - 1] += w }
+                    if k == 0 {
+                        acc[t].missed += w
+                    } else {
+                        acc[t].options[k - 1] += w
+                    }
                 }
             }
             let mut p = 0;
@@ -296,7 +359,9 @@ mod tests {
                     return acc;
                 }
                 idx[p] += 1;
-                if idx[p] < sizes[p] { break; }
+                if idx[p] < sizes[p] {
+                    break;
+                }
                 idx[p] = 0;
                 p += 1;
             }
@@ -324,10 +389,26 @@ mod tests {
     fn murty_truncation_approaches_exact_marginals() {
         let c = two_tracks();
         let mut solver = Solver::new();
-        let exact = associate(&c, 3, Method::Jpda { max_exact: 1000, k_best: 10 }, &mut solver);
+        let exact = associate(
+            &c,
+            3,
+            Method::Jpda {
+                max_exact: 1000,
+                k_best: 10,
+            },
+            &mut solver,
+        );
         assert!(!exact.truncated);
         // Force the k-best path with all 10 hypotheses: identical marginals.
-        let kb = associate(&c, 3, Method::Jpda { max_exact: 1, k_best: 10 }, &mut solver);
+        let kb = associate(
+            &c,
+            3,
+            Method::Jpda {
+                max_exact: 1,
+                k_best: 10,
+            },
+            &mut solver,
+        );
         assert!(kb.truncated && kb.hypotheses == 10);
         for (x, y) in exact.marginals.iter().zip(&kb.marginals) {
             assert!((x.missed - y.missed).abs() < 1e-12);

@@ -71,7 +71,14 @@ mod tests {
 
     #[test]
     fn query_returns_a_superset_of_the_box_and_nothing_far() {
-        let pts: Vec<[f64; 2]> = (0..400).map(|i| [((i * 37) % 200) as f64 * 10.0 - 1000.0, ((i * 91) % 200) as f64 * 10.0 - 1000.0]).collect();
+        let pts: Vec<[f64; 2]> = (0..400)
+            .map(|i| {
+                [
+                    ((i * 37) % 200) as f64 * 10.0 - 1000.0,
+                    ((i * 91) % 200) as f64 * 10.0 - 1000.0,
+                ]
+            })
+            .collect();
         let mut g = Grid::default();
         g.rebuild(&pts, 50.0);
         let mut out = Vec::new();

@@ -39,7 +39,10 @@ pub(crate) struct HealthWindow {
 
 impl HealthWindow {
     pub(crate) fn new(capacity: usize) -> Self {
-        Self { capacity: capacity.max(1), ..Self::default() }
+        Self {
+            capacity: capacity.max(1),
+            ..Self::default()
+        }
     }
 
     pub(crate) fn push(&mut self, h: ScanHealth) {
@@ -90,6 +93,10 @@ impl HealthWindow {
             return (None, None, 0);
         }
         let s: f64 = self.scans.iter().map(|s| s.nis_sum).sum();
-        (Some(s / n as f64), Some(self.sum.nis_outside as f64 / n as f64), n)
+        (
+            Some(s / n as f64),
+            Some(self.sum.nis_outside as f64 / n as f64),
+            n,
+        )
     }
 }

@@ -34,7 +34,10 @@ use crate::clutter::{DetectionProbability, Region};
 use crate::error::{Error, ErrorKind, Result, check_non_negative, check_positive, check_prob};
 use crate::gating::Gate;
 use crate::gaussian::{Gaussian, PreparedUpdate};
-use crate::measurement::{CartesianPosition, Conversion, MeasurementModel, RangeBearing, RangeBearingRate, polar_to_cartesian};
+use crate::measurement::{
+    CartesianPosition, Conversion, MeasurementModel, RangeBearing, RangeBearingRate,
+    polar_to_cartesian,
+};
 use crate::motion::{ConstantVelocity, MotionModel};
 use crate::single::pda_combine;
 use crate::stats;
@@ -108,8 +111,14 @@ pub struct TrackerConfig {
 impl Default for TrackerConfig {
     fn default() -> Self {
         Self {
-            association: AssociationMethod::Jpda { max_exact_hypotheses: 2000, k_best: 200 },
-            management: Management::Existence { confirm: 0.9, delete: 1e-3 },
+            association: AssociationMethod::Jpda {
+                max_exact_hypotheses: 2000,
+                k_best: 200,
+            },
+            management: Management::Existence {
+                confirm: 0.9,
+                delete: 1e-3,
+            },
             gate_probability: 0.99,
             process_noise: 0.5,
             reorder_window: 0.0,
@@ -124,9 +133,15 @@ impl Default for TrackerConfig {
 impl TrackerConfig {
     /// Check every field; the message names the field and the rule.
     pub fn validate(&self) -> Result<()> {
-        if let AssociationMethod::Jpda { max_exact_hypotheses, k_best } = self.association {
+        if let AssociationMethod::Jpda {
+            max_exact_hypotheses,
+            k_best,
+        } = self.association
+        {
             if max_exact_hypotheses == 0 || k_best == 0 {
-                return Err(Error::param("association max_exact_hypotheses and k_best must be at least 1"));
+                return Err(Error::param(
+                    "association max_exact_hypotheses and k_best must be at least 1",
+                ));
             }
         }
         match self.management {
@@ -141,10 +156,14 @@ impl TrackerConfig {
             }
             Management::MOfN { m, n, max_misses } => {
                 if !(1 <= m && m <= n && n <= 32) {
-                    return Err(Error::param(format!("management M-of-N needs 1 <= m <= n <= 32, got m = {m}, n = {n}")));
+                    return Err(Error::param(format!(
+                        "management M-of-N needs 1 <= m <= n <= 32, got m = {m}, n = {n}"
+                    )));
                 }
                 if max_misses == 0 {
-                    return Err(Error::param("management max_misses must be at least 1, got 0"));
+                    return Err(Error::param(
+                        "management max_misses must be at least 1, got 0",
+                    ));
                 }
             }
         }
@@ -153,7 +172,12 @@ impl TrackerConfig {
         check_non_negative("reorder window (s)", self.reorder_window)?;
         check_positive("max position std (m)", self.max_position_std)?;
         check_positive("initial velocity std (m/s)", self.initial_velocity_std)?;
-        check_prob("survival probability (per second)", self.survival_probability, false, true)?;
+        check_prob(
+            "survival probability (per second)",
+            self.survival_probability,
+            false,
+            true,
+        )?;
         if self.health_window == 0 {
             return Err(Error::param("health window must be at least 1 scan, got 0"));
         }
@@ -233,13 +257,32 @@ impl SensorConfig {
     /// Check every field; messages name the sensor, the field and the rule.
     pub fn validate(&self) -> Result<()> {
         self.region().map(|_| ())?;
-        self.with_prefix(check_prob("detection probability", self.detection_probability, false, true).map(|_| ()))?;
-        self.with_prefix(check_non_negative("clutter rate (per scan)", self.clutter_rate).map(|_| ()))?;
+        self.with_prefix(
+            check_prob(
+                "detection probability",
+                self.detection_probability,
+                false,
+                true,
+            )
+            .map(|_| ()),
+        )?;
+        self.with_prefix(
+            check_non_negative("clutter rate (per scan)", self.clutter_rate).map(|_| ()),
+        )?;
         self.with_prefix(check_positive("birth rate (per scan)", self.birth_rate).map(|_| ()))?;
         match self.kind {
-            SensorKind::Cartesian { sigma } => self.with_prefix(CartesianPosition::new(sigma).map(|_| ()))?,
-            SensorKind::Polar { x, y, sigma_range, sigma_bearing_deg, sigma_range_rate } => {
-                let p = self.with_prefix(RangeBearing::new([x, y], sigma_range, sigma_bearing_deg))?;
+            SensorKind::Cartesian { sigma } => {
+                self.with_prefix(CartesianPosition::new(sigma).map(|_| ()))?
+            }
+            SensorKind::Polar {
+                x,
+                y,
+                sigma_range,
+                sigma_bearing_deg,
+                sigma_range_rate,
+            } => {
+                let p =
+                    self.with_prefix(RangeBearing::new([x, y], sigma_range, sigma_bearing_deg))?;
                 if let Some(s) = sigma_range_rate {
                     self.with_prefix(RangeBearingRate::new(p, s).map(|_| ()))?;
                 }
@@ -255,8 +298,29 @@ impl SensorConfig {
     /// The core region of this sensor's field of view (radians, with the sensor origin).
     fn region(&self) -> Result<Region> {
         let region = match (self.kind, self.fov) {
-            (SensorKind::Cartesian { .. }, FieldOfView::Rect { x_min, x_max, y_min, y_max }) => Region::Rect { x_min, x_max, y_min, y_max },
-            (SensorKind::Polar { x, y, .. }, FieldOfView::Sector { min_range, max_range, bearing_start_deg, bearing_extent_deg }) => Region::Sector {
+            (
+                SensorKind::Cartesian { .. },
+                FieldOfView::Rect {
+                    x_min,
+                    x_max,
+                    y_min,
+                    y_max,
+                },
+            ) => Region::Rect {
+                x_min,
+                x_max,
+                y_min,
+                y_max,
+            },
+            (
+                SensorKind::Polar { x, y, .. },
+                FieldOfView::Sector {
+                    min_range,
+                    max_range,
+                    bearing_start_deg,
+                    bearing_extent_deg,
+                },
+            ) => Region::Sector {
                 origin: [x, y],
                 min_range,
                 max_range,
@@ -264,10 +328,16 @@ impl SensorConfig {
                 bearing_extent: bearing_extent_deg.to_radians(),
             },
             (SensorKind::Cartesian { .. }, _) => {
-                return Err(Error::param(format!("sensor {}: a cartesian sensor needs a rectangular field of view", self.id)));
+                return Err(Error::param(format!(
+                    "sensor {}: a cartesian sensor needs a rectangular field of view",
+                    self.id
+                )));
             }
             (SensorKind::Polar { .. }, _) => {
-                return Err(Error::param(format!("sensor {}: a polar sensor needs a sector field of view", self.id)));
+                return Err(Error::param(format!(
+                    "sensor {}: a polar sensor needs a sector field of view",
+                    self.id
+                )));
             }
         };
         self.with_prefix(region.validate())?;
@@ -439,8 +509,16 @@ impl SensorRuntime {
         cfg.validate()?;
         let region = cfg.region()?;
         let (model, dim) = match cfg.kind {
-            SensorKind::Cartesian { sigma } => (Model::Cartesian(CartesianPosition::new(sigma)?), 2),
-            SensorKind::Polar { x, y, sigma_range, sigma_bearing_deg, sigma_range_rate } => {
+            SensorKind::Cartesian { sigma } => {
+                (Model::Cartesian(CartesianPosition::new(sigma)?), 2)
+            }
+            SensorKind::Polar {
+                x,
+                y,
+                sigma_range,
+                sigma_bearing_deg,
+                sigma_range_rate,
+            } => {
                 let p = RangeBearing::new([x, y], sigma_range, sigma_bearing_deg)?;
                 match sigma_range_rate {
                     Some(s) => (Model::PolarRate(RangeBearingRate::new(p, s)?), 3),
@@ -462,7 +540,10 @@ impl SensorRuntime {
             gate: Gate::new(config.gate_probability, dim)?,
             ln_kappa: kappa.ln(),
             birth_share: cfg.birth_rate / (cfg.birth_rate + cfg.clutter_rate),
-            nis_interval: (stats::chi2_quantile(0.025, dim)?, stats::chi2_quantile(0.975, dim)?),
+            nis_interval: (
+                stats::chi2_quantile(0.025, dim)?,
+                stats::chi2_quantile(0.975, dim)?,
+            ),
             health: HealthWindow::new(config.health_window),
         })
     }
@@ -589,13 +670,22 @@ impl Tracker {
         let mut runtime = Vec::with_capacity(sensors.len());
         for (i, s) in sensors.iter().enumerate() {
             if sensors[..i].iter().any(|o| o.id == s.id) {
-                return Err(Error::param(format!("sensor id {} is configured twice", s.id)));
+                return Err(Error::param(format!(
+                    "sensor id {} is configured twice",
+                    s.id
+                )));
             }
             runtime.push(SensorRuntime::new(s, &config)?);
         }
         let method = match config.association {
             AssociationMethod::Gnn => Method::Gnn,
-            AssociationMethod::Jpda { max_exact_hypotheses, k_best } => Method::Jpda { max_exact: max_exact_hypotheses, k_best },
+            AssociationMethod::Jpda {
+                max_exact_hypotheses,
+                k_best,
+            } => Method::Jpda {
+                max_exact: max_exact_hypotheses,
+                k_best,
+            },
         };
         Ok(Self {
             motion: ConstantVelocity::continuous(config.process_noise)?,
@@ -688,29 +778,52 @@ impl Tracker {
         let Some(rt) = self.runtime.get(scan.sensor) else {
             return Err(Error::new(
                 ErrorKind::UnknownSensor,
-                format!("sensor index {} is not configured ({} sensors)", scan.sensor, self.sensors.len()),
+                format!(
+                    "sensor index {} is not configured ({} sensors)",
+                    scan.sensor,
+                    self.sensors.len()
+                ),
             ));
         };
         if !scan.time.is_finite() {
-            return Err(Error::input(format!("scan time must be finite, got {}", scan.time)));
+            return Err(Error::input(format!(
+                "scan time must be finite, got {}",
+                scan.time
+            )));
         }
         let id = &self.sensors[scan.sensor].id;
         for (i, d) in scan.detections.iter().enumerate() {
             let ok = match (d, rt.model) {
-                (Measurement::Cartesian { x, y }, Model::Cartesian(_)) => x.is_finite() && y.is_finite(),
-                (Measurement::Polar { range, bearing_deg, range_rate }, Model::Polar(_) | Model::PolarRate(_)) => {
+                (Measurement::Cartesian { x, y }, Model::Cartesian(_)) => {
+                    x.is_finite() && y.is_finite()
+                }
+                (
+                    Measurement::Polar {
+                        range,
+                        bearing_deg,
+                        range_rate,
+                    },
+                    Model::Polar(_) | Model::PolarRate(_),
+                ) => {
                     if matches!(rt.model, Model::PolarRate(_)) && range_rate.is_none() {
                         return Err(Error::input(format!(
                             "detections[{i}] has no range_rate, which sensor {id} is configured to measure"
                         )));
                     }
-                    range.is_finite() && *range >= 0.0 && bearing_deg.is_finite() && range_rate.is_none_or(|r| r.is_finite())
+                    range.is_finite()
+                        && *range >= 0.0
+                        && bearing_deg.is_finite()
+                        && range_rate.is_none_or(|r| r.is_finite())
                 }
                 (Measurement::Cartesian { .. }, _) => {
-                    return Err(Error::input(format!("detections[{i}] is cartesian but sensor {id} is polar")));
+                    return Err(Error::input(format!(
+                        "detections[{i}] is cartesian but sensor {id} is polar"
+                    )));
                 }
                 (Measurement::Polar { .. }, _) => {
-                    return Err(Error::input(format!("detections[{i}] is polar but sensor {id} is cartesian")));
+                    return Err(Error::input(format!(
+                        "detections[{i}] is polar but sensor {id} is cartesian"
+                    )));
                 }
             };
             if !ok {
@@ -730,7 +843,10 @@ impl Tracker {
     /// Change a sensor's P_D, clutter rate or noise; applies from the next scan.
     pub fn update_sensor(&mut self, sensor: usize, params: &SensorParams) -> Result<()> {
         let Some(cfg) = self.sensors.get(sensor) else {
-            return Err(Error::new(ErrorKind::UnknownSensor, format!("sensor index {sensor} is not configured")));
+            return Err(Error::new(
+                ErrorKind::UnknownSensor,
+                format!("sensor index {sensor} is not configured"),
+            ));
         };
         let mut cfg = cfg.clone();
         if let Some(p) = params.detection_probability {
@@ -742,15 +858,25 @@ impl Tracker {
         match &mut cfg.kind {
             SensorKind::Cartesian { sigma } => {
                 if params.sigma_range.is_some() || params.sigma_bearing_deg.is_some() {
-                    return Err(Error::param(format!("sensor {}: range and bearing noise do not apply to a cartesian sensor", cfg.id)));
+                    return Err(Error::param(format!(
+                        "sensor {}: range and bearing noise do not apply to a cartesian sensor",
+                        cfg.id
+                    )));
                 }
                 if let Some(s) = params.sigma {
                     *sigma = s;
                 }
             }
-            SensorKind::Polar { sigma_range, sigma_bearing_deg, .. } => {
+            SensorKind::Polar {
+                sigma_range,
+                sigma_bearing_deg,
+                ..
+            } => {
                 if params.sigma.is_some() {
-                    return Err(Error::param(format!("sensor {}: cartesian noise sigma does not apply to a polar sensor", cfg.id)));
+                    return Err(Error::param(format!(
+                        "sensor {}: cartesian noise sigma does not apply to a polar sensor",
+                        cfg.id
+                    )));
                 }
                 if let Some(s) = params.sigma_range {
                     *sigma_range = s;
@@ -781,7 +907,9 @@ impl Tracker {
             configured_clutter_rate: cfg.clutter_rate,
             configured_detection_probability: cfg.detection_probability,
             clutter_rate_estimate: rt.health.clutter_rate(),
-            detection_probability_estimate: rt.health.detection_probability(self.config.gate_probability),
+            detection_probability_estimate: rt
+                .health
+                .detection_probability(self.config.gate_probability),
             nis_mean,
             nis_outside_95,
             nis_samples,
@@ -802,14 +930,21 @@ impl Tracker {
         }
         self.time = Some(t);
         let s = scan.sensor;
-        let mut stats = ScanStats { detections: scan.detections.len(), ..ScanStats::default() };
+        let mut stats = ScanStats {
+            detections: scan.detections.len(),
+            ..ScanStats::default()
+        };
         let model = self.runtime[s].model;
         match model {
             Model::Cartesian(m) => {
-                let zs: Vec<Vector2<f64>> = scan.detections.iter().map(|d| match *d {
-                    Measurement::Cartesian { x, y } => Vector2::new(x, y),
-                    Measurement::Polar { .. } => Vector2::zeros(),
-                }).collect();
+                let zs: Vec<Vector2<f64>> = scan
+                    .detections
+                    .iter()
+                    .map(|d| match *d {
+                        Measurement::Cartesian { x, y } => Vector2::new(x, y),
+                        Measurement::Polar { .. } => Vector2::zeros(),
+                    })
+                    .collect();
                 let xy: Vec<[f64; 2]> = zs.iter().map(|z| [z[0], z[1]]).collect();
                 self.update::<2, _>(s, &m, &zs, &xy, t, &mut stats);
             }
@@ -834,7 +969,9 @@ impl Tracker {
                 Management::Existence { delete, .. } => match tr.status {
                     TrackStatus::Confirmed => tr.existence < delete,
                     TrackStatus::Tentative => {
-                        (tr.age > 0 && odds(tr.existence) < TENTATIVE_ODDS_DROP * odds(tr.birth_existence)) || tr.age >= TENTATIVE_MAX_SCANS
+                        (tr.age > 0
+                            && odds(tr.existence) < TENTATIVE_ODDS_DROP * odds(tr.birth_existence))
+                            || tr.age >= TENTATIVE_MAX_SCANS
                     }
                 },
                 Management::MOfN { m, n, max_misses } => match tr.status {
@@ -857,7 +994,14 @@ impl Tracker {
         });
         stats.ended = ended.len();
         ended.sort_unstable();
-        Picture { time: t, sensor: s, tag: scan.tag, tracks: self.picture(), ended, stats }
+        Picture {
+            time: t,
+            sensor: s,
+            tag: scan.tag,
+            tracks: self.picture(),
+            ended,
+            stats,
+        }
     }
 
     /// Gate, associate and update all tracks with one scan of sensor `s` whose measurement
@@ -877,7 +1021,8 @@ impl Tracker {
         let gamma = gate.threshold();
         let n_tracks = self.tracks.len();
         // 1. Prepared updates and gate bounding boxes of the covered tracks.
-        let mut prepared: Vec<Option<(PreparedUpdate<4, M>, f64, f64)>> = Vec::with_capacity(n_tracks);
+        let mut prepared: Vec<Option<(PreparedUpdate<4, M>, f64, f64)>> =
+            Vec::with_capacity(n_tracks);
         let mut half_widths = Vec::with_capacity(n_tracks);
         for tr in &self.tracks {
             let (x, y) = (tr.state.mean()[0], tr.state.mean()[1]);
@@ -890,7 +1035,9 @@ impl Tracker {
                 continue;
             };
             let pd = match rt.region {
-                Region::Sector { origin, .. } => rt.pd.at_range((x - origin[0]).hypot(y - origin[1])),
+                Region::Sector { origin, .. } => {
+                    rt.pd.at_range((x - origin[0]).hypot(y - origin[1]))
+                }
                 Region::Rect { .. } => rt.pd.at_range(0.0),
             };
             let hw = match rt.model {
@@ -910,17 +1057,24 @@ impl Tracker {
             100.0
         } else {
             let mid = half_widths.len() / 2;
-            *half_widths.select_nth_unstable_by(mid, |a, b| a.total_cmp(b)).1
+            *half_widths
+                .select_nth_unstable_by(mid, |a, b| a.total_cmp(b))
+                .1
         };
         self.scratch.grid.rebuild(xy, cell.max(1.0));
         // 3. Gating: (track, detection, innovation, ln likelihood ratio, d²).
         let mut pairs: Vec<(u32, u32, SVector<f64, M>, f64, f64)> = Vec::new();
         for (ti, p) in prepared.iter().enumerate() {
             let Some((prep, pd, hw)) = p else { continue };
-            let (x, y) = (self.tracks[ti].state.mean()[0], self.tracks[ti].state.mean()[1]);
+            let (x, y) = (
+                self.tracks[ti].state.mean()[0],
+                self.tracks[ti].state.mean()[1],
+            );
             let cands = &mut self.scratch.candidates;
             cands.clear();
-            self.scratch.grid.query(x - hw, y - hw, x + hw, y + hw, cands);
+            self.scratch
+                .grid
+                .query(x - hw, y - hw, x + hw, y + hw, cands);
             cands.sort_unstable();
             for &j in cands.iter() {
                 let nu = model.residual(&zs[j as usize], &prep.zhat);
@@ -988,16 +1142,27 @@ impl Tracker {
             let mut cands: Vec<Candidates> = Vec::with_capacity(members.len());
             for &ti in members {
                 let tr = &self.tracks[ti as usize];
-                let (_, pd, _) = prepared[ti as usize].as_ref().map(|p| (0, p.1, 0)).unwrap_or((0, 0.0, 0));
+                let (_, pd, _) = prepared[ti as usize]
+                    .as_ref()
+                    .map(|p| (0, p.1, 0))
+                    .unwrap_or((0, 0.0, 0));
                 // JPDA weighs hypotheses with the existence probability (joint IPDA); GNN's
                 // hard decision uses the plain likelihood ratio against 1 − P_D P_G, so that a
                 // new track with a small existence still takes the detection that fits it.
-                let r = if matches!(self.method, Method::Gnn) { 1.0 } else { tr.existence };
+                let r = if matches!(self.method, Method::Gnn) {
+                    1.0
+                } else {
+                    tr.existence
+                };
                 let ln_miss = (1.0 - r * pd * pg).ln();
-                let range = first_pair[ti as usize]..first_pair[ti as usize] + pair_count[ti as usize];
+                let range =
+                    first_pair[ti as usize]..first_pair[ti as usize] + pair_count[ti as usize];
                 let lns: Vec<f64> = pairs[range.clone()].iter().map(|p| r.ln() + p.3).collect();
                 let mx = lns.iter().copied().fold(ln_miss, f64::max);
-                let mut c = Candidates { missed: (ln_miss - mx).exp(), options: Vec::with_capacity(lns.len()) };
+                let mut c = Candidates {
+                    missed: (ln_miss - mx).exp(),
+                    options: Vec::with_capacity(lns.len()),
+                };
                 for (p, l) in pairs[range].iter().zip(&lns) {
                     let j = p.1 as usize;
                     if local[j] == u32::MAX {
@@ -1008,7 +1173,8 @@ impl Tracker {
                 }
                 cands.push(c);
             }
-            let outcome = assoc::associate(&cands, dets.len(), self.method, &mut self.scratch.solver);
+            let outcome =
+                assoc::associate(&cands, dets.len(), self.method, &mut self.scratch.solver);
             stats.clusters += 1;
             stats.max_cluster_tracks = stats.max_cluster_tracks.max(members.len());
             stats.hypotheses += outcome.hypotheses;
@@ -1026,22 +1192,36 @@ impl Tracker {
             }
         }
         // 6. State and existence updates.
-        let mut health = ScanHealth { clutter: zs.len() as f64, ..ScanHealth::default() };
+        let mut health = ScanHealth {
+            clutter: zs.len() as f64,
+            ..ScanHealth::default()
+        };
         let (nis_lo, nis_hi) = rt.nis_interval;
         let management = self.config.management;
         let gnn = matches!(self.method, Method::Gnn);
         for ti in 0..n_tracks {
-            let Some((prep, pd, _)) = prepared[ti].as_ref() else { continue };
+            let Some((prep, pd, _)) = prepared[ti].as_ref() else {
+                continue;
+            };
             let tr = &mut self.tracks[ti];
             let r = tr.existence;
             let b0 = beta0[ti];
-            let range = if pair_count[ti] > 0 { first_pair[ti]..first_pair[ti] + pair_count[ti] } else { 0..0 };
+            let range = if pair_count[ti] > 0 {
+                first_pair[ti]..first_pair[ti] + pair_count[ti]
+            } else {
+                0..0
+            };
             let b_det: f64 = beta[range.clone()].iter().sum();
             // Existence: joint IPDA. For GNN the hard decision is turned into the IPDA update
             // with the assigned detection alone.
             let q = r * (1.0 - pd * pg) / (1.0 - r * pd * pg);
             let r_post = if gnn {
-                let lr: f64 = pairs[range.clone()].iter().zip(&beta[range.clone()]).filter(|(_, b)| **b > 0.5).map(|(p, _)| p.3.exp()).sum();
+                let lr: f64 = pairs[range.clone()]
+                    .iter()
+                    .zip(&beta[range.clone()])
+                    .filter(|(_, b)| **b > 0.5)
+                    .map(|(p, _)| p.3.exp())
+                    .sum();
                 let delta = pd * pg - lr;
                 ((1.0 - delta) * r / (1.0 - delta * r)).clamp(0.0, 1.0)
             } else {
@@ -1095,7 +1275,11 @@ impl Tracker {
                 health.clutter -= b_det;
                 health.detected += 1.0 - b0;
                 health.covered += 1.0;
-                if let Some((k, b)) = beta[range.clone()].iter().enumerate().max_by(|a, b| a.1.total_cmp(b.1)) {
+                if let Some((k, b)) = beta[range.clone()]
+                    .iter()
+                    .enumerate()
+                    .max_by(|a, b| a.1.total_cmp(b.1))
+                {
                     if *b > 0.5 {
                         let d2 = pairs[range.start + k].4;
                         health.nis_sum += d2;
@@ -1111,7 +1295,11 @@ impl Tracker {
         let position = match rt.model {
             Model::Cartesian(_) => None,
             Model::Polar(m) => Some((m.position, m.sigma_range(), m.sigma_bearing())),
-            Model::PolarRate(m) => Some((m.polar.position, m.polar.sigma_range(), m.polar.sigma_bearing())),
+            Model::PolarRate(m) => Some((
+                m.polar.position,
+                m.polar.sigma_range(),
+                m.polar.sigma_bearing(),
+            )),
         };
         let noise = model.noise();
         let vel_var = self.config.initial_velocity_std.powi(2);
@@ -1125,17 +1313,29 @@ impl Tracker {
             }
             let r0 = (1.0 - used[j]) * birth_share;
             let (mean, pos_cov) = match position {
-                None => (Vector2::new(z[0], z[1]), nalgebra::Matrix2::new(noise[(0, 0)], noise[(0, 1)], noise[(1, 0)], noise[(1, 1)])),
-                Some((origin, sr, sb)) => match polar_to_cartesian(origin, z[0], z[1], sr, sb, Conversion::Unbiased) {
-                    Ok(v) => v,
-                    Err(_) => continue,
-                },
+                None => (
+                    Vector2::new(z[0], z[1]),
+                    nalgebra::Matrix2::new(
+                        noise[(0, 0)],
+                        noise[(0, 1)],
+                        noise[(1, 0)],
+                        noise[(1, 1)],
+                    ),
+                ),
+                Some((origin, sr, sb)) => {
+                    match polar_to_cartesian(origin, z[0], z[1], sr, sb, Conversion::Unbiased) {
+                        Ok(v) => v,
+                        Err(_) => continue,
+                    }
+                }
             };
             let mut cov = Matrix4::zeros();
             cov.fixed_view_mut::<2, 2>(0, 0).copy_from(&pos_cov);
             cov[(2, 2)] = vel_var;
             cov[(3, 3)] = vel_var;
-            let Ok(state) = Gaussian::new(Vector4::new(mean[0], mean[1], 0.0, 0.0), cov) else { continue };
+            let Ok(state) = Gaussian::new(Vector4::new(mean[0], mean[1], 0.0, 0.0), cov) else {
+                continue;
+            };
             self.tracks.push(Track {
                 id: self.next_id,
                 state,
@@ -1158,16 +1358,30 @@ impl Tracker {
 }
 
 fn mask(bits: u32) -> u32 {
-    if bits >= 32 { u32::MAX } else { (1u32 << bits) - 1 }
+    if bits >= 32 {
+        u32::MAX
+    } else {
+        (1u32 << bits) - 1
+    }
 }
 
 /// Measurement vectors (r, b[, ṙ]) in radians and site-plane positions of polar detections.
-fn polar_vectors<const M: usize>(dets: &[Measurement], origin: [f64; 2]) -> (Vec<SVector<f64, M>>, Vec<[f64; 2]>) {
+fn polar_vectors<const M: usize>(
+    dets: &[Measurement],
+    origin: [f64; 2],
+) -> (Vec<SVector<f64, M>>, Vec<[f64; 2]>) {
     let mut zs = Vec::with_capacity(dets.len());
     let mut xy = Vec::with_capacity(dets.len());
     for d in dets {
-        if let Measurement::Polar { range, bearing_deg, range_rate } = *d {
-            let b = bearing_deg.to_radians().rem_euclid(2.0 * std::f64::consts::PI);
+        if let Measurement::Polar {
+            range,
+            bearing_deg,
+            range_rate,
+        } = *d
+        {
+            let b = bearing_deg
+                .to_radians()
+                .rem_euclid(2.0 * std::f64::consts::PI);
             let mut z = SVector::<f64, M>::zeros();
             z[0] = range;
             z[1] = b;

@@ -14,8 +14,19 @@ use nalgebra::{Matrix4, Vector2, Vector4};
 pub fn radar(id: &str, x: f64, y: f64, pd: f64, clutter: f64) -> SensorConfig {
     SensorConfig {
         id: id.into(),
-        kind: SensorKind::Polar { x, y, sigma_range: 10.0, sigma_bearing_deg: 0.2, sigma_range_rate: None },
-        fov: FieldOfView::Sector { min_range: 100.0, max_range: 6000.0, bearing_start_deg: 0.0, bearing_extent_deg: 360.0 },
+        kind: SensorKind::Polar {
+            x,
+            y,
+            sigma_range: 10.0,
+            sigma_bearing_deg: 0.2,
+            sigma_range_rate: None,
+        },
+        fov: FieldOfView::Sector {
+            min_range: 100.0,
+            max_range: 6000.0,
+            bearing_start_deg: 0.0,
+            bearing_extent_deg: 360.0,
+        },
         detection_probability: pd,
         clutter_rate: clutter,
         birth_rate: 0.1,
@@ -30,24 +41,54 @@ pub fn twelve_vessels() -> Vec<SimTarget> {
         let r0 = 1500.0 + 250.0 * (k % 4) as f64;
         let speed = 4.0 + (k % 5) as f64;
         let heading = a + 100f64.to_radians();
-        let legs = if k % 3 == 0 { vec![Leg::Straight { duration: 120.0 }, Leg::Turn { duration: 30.0, rate_deg_s: 2.0 }] } else { vec![] };
+        let legs = if k % 3 == 0 {
+            vec![
+                Leg::Straight { duration: 120.0 },
+                Leg::Turn {
+                    duration: 30.0,
+                    rate_deg_s: 2.0,
+                },
+            ]
+        } else {
+            vec![]
+        };
         v.push(SimTarget {
             name: format!("vessel-{k:02}"),
             birth: 20.0 * (k % 6) as f64,
             death: 600.0 - 25.0 * (k % 5) as f64,
-            initial: [r0 * a.sin(), r0 * a.cos(), speed * heading.sin(), speed * heading.cos()],
+            initial: [
+                r0 * a.sin(),
+                r0 * a.cos(),
+                speed * heading.sin(),
+                speed * heading.cos(),
+            ],
             legs,
         });
     }
     v
 }
 
-pub fn scenario(sensors: Vec<SimSensor>, targets: Vec<SimTarget>, duration: f64, seed: u64) -> Scenario {
-    Scenario { sensors, targets, start: 1_800_000_000.0, duration: Some(duration), seed }
+pub fn scenario(
+    sensors: Vec<SimSensor>,
+    targets: Vec<SimTarget>,
+    duration: f64,
+    seed: u64,
+) -> Scenario {
+    Scenario {
+        sensors,
+        targets,
+        start: 1_800_000_000.0,
+        duration: Some(duration),
+        seed,
+    }
 }
 
 pub fn sim_sensor(config: SensorConfig, period: f64, offset: f64) -> SimSensor {
-    SimSensor { config, period, offset }
+    SimSensor {
+        config,
+        period,
+        offset,
+    }
 }
 
 /// Run the tracker over the scenario; returns, per scan, the truth and the pictures.
@@ -75,7 +116,12 @@ pub fn mean_gospa(run: &[(SimScan, Picture)], c: f64, skip: f64) -> f64 {
             continue;
         }
         let truth: Vec<[f64; 2]> = s.truth.iter().map(|(_, x)| [x[0], x[1]]).collect();
-        let est: Vec<[f64; 2]> = p.tracks.iter().filter(|t| t.status == TrackStatus::Confirmed).map(|t| [t.state[0], t.state[1]]).collect();
+        let est: Vec<[f64; 2]> = p
+            .tracks
+            .iter()
+            .filter(|t| t.status == TrackStatus::Confirmed)
+            .map(|t| [t.state[0], t.state[1]])
+            .collect();
         sum += gospa(&truth, &est, &params).unwrap().distance;
         n += 1;
     }
@@ -97,7 +143,16 @@ pub fn known_association_gospa(sc: &Scenario, config: &TrackerConfig, c: f64, sk
     let mut n = 0;
     for s in Simulator::new(&clean(sc)).unwrap() {
         let cfg = &sc.sensors[s.scan.sensor].config;
-        let SensorKind::Polar { x: sx, y: sy, sigma_range, sigma_bearing_deg, .. } = cfg.kind else { panic!("polar only") };
+        let SensorKind::Polar {
+            x: sx,
+            y: sy,
+            sigma_range,
+            sigma_bearing_deg,
+            ..
+        } = cfg.kind
+        else {
+            panic!("polar only")
+        };
         let model = RangeBearing::new([sx, sy], sigma_range, sigma_bearing_deg).unwrap();
         let t = s.scan.time;
         for (k, target) in sc.targets.iter().enumerate() {
@@ -113,7 +168,12 @@ pub fn known_association_gospa(sc: &Scenario, config: &TrackerConfig, c: f64, sk
         }
         // In the clean replay every detection is target-originated; match it to its target.
         for d in &s.scan.detections {
-            let Measurement::Polar { range, bearing_deg, .. } = *d else { continue };
+            let Measurement::Polar {
+                range, bearing_deg, ..
+            } = *d
+            else {
+                continue;
+            };
             let b = bearing_deg.to_radians();
             let (zx, zy) = (sx + range * b.sin(), sy + range * b.cos());
             let k = s
@@ -132,16 +192,29 @@ pub fn known_association_gospa(sc: &Scenario, config: &TrackerConfig, c: f64, sk
             let z = Vector2::new(range, b);
             match filters[ti].as_mut() {
                 None => {
-                    let (m, pc) = polar_to_cartesian([sx, sy], range, b, sigma_range, sigma_bearing_deg.to_radians(), Conversion::Unbiased).unwrap();
+                    let (m, pc) = polar_to_cartesian(
+                        [sx, sy],
+                        range,
+                        b,
+                        sigma_range,
+                        sigma_bearing_deg.to_radians(),
+                        Conversion::Unbiased,
+                    )
+                    .unwrap();
                     let mut cov = Matrix4::zeros();
                     cov.fixed_view_mut::<2, 2>(0, 0).copy_from(&pc);
                     cov[(2, 2)] = config.initial_velocity_std.powi(2);
                     cov[(3, 3)] = config.initial_velocity_std.powi(2);
-                    filters[ti] = Some((Gaussian::new(Vector4::new(m[0], m[1], 0.0, 0.0), cov).unwrap(), t, 1));
+                    filters[ti] = Some((
+                        Gaussian::new(Vector4::new(m[0], m[1], 0.0, 0.0), cov).unwrap(),
+                        t,
+                        1,
+                    ));
                 }
                 Some((g, _, hits)) => {
                     let prep = g.prepare::<2, _>(&model).unwrap();
-                    let nu = <RangeBearing as MeasurementModel<4, 2>>::residual(&model, &z, &prep.zhat);
+                    let nu =
+                        <RangeBearing as MeasurementModel<4, 2>>::residual(&model, &z, &prep.zhat);
                     *g = prep.apply(g, &nu);
                     *hits += 1;
                 }
@@ -149,7 +222,12 @@ pub fn known_association_gospa(sc: &Scenario, config: &TrackerConfig, c: f64, sk
         }
         if t - t0 >= skip {
             let truth: Vec<[f64; 2]> = s.truth.iter().map(|(_, x)| [x[0], x[1]]).collect();
-            let est: Vec<[f64; 2]> = filters.iter().flatten().filter(|f| f.2 >= 2).map(|f| [f.0.mean()[0], f.0.mean()[1]]).collect();
+            let est: Vec<[f64; 2]> = filters
+                .iter()
+                .flatten()
+                .filter(|f| f.2 >= 2)
+                .map(|f| [f.0.mean()[0], f.0.mean()[1]])
+                .collect();
             sum += gospa(&truth, &est, &params).unwrap().distance;
             n += 1;
         }
