@@ -108,9 +108,16 @@ fn crossing_outcome(config: TrackerConfig, sc: &filter_core::sim::Scenario) -> O
             .min_by(|a, b| a.0.total_cmp(&b.0))
             .map(|(_, id)| id)
     };
-    let early = r.iter().find(|s| s.1.time - sc.start >= 40.0)?;
+    // Reference: the first scan, well before the closest approach (120–127.5 s), at which each
+    // vessel has its own confirmed track.
+    let (a0, b0) = r
+        .iter()
+        .filter(|s| s.1.time - sc.start < 100.0)
+        .find_map(|s| match (nearest(s, "skiff-a"), nearest(s, "skiff-b")) {
+            (Some(a), Some(b)) if a != b => Some((a, b)),
+            _ => None,
+        })?;
     let late = r.last()?;
-    let (a0, b0) = (nearest(early, "skiff-a")?, nearest(early, "skiff-b")?);
     let (a1, b1) = (nearest(late, "skiff-a")?, nearest(late, "skiff-b")?);
     if a0 == b0 {
         return None;

@@ -219,6 +219,38 @@ pub(crate) fn associate(
     method: Method,
     solver: &mut Solver,
 ) -> ClusterOutcome {
+    // A lone track (the common case) needs no joint reasoning: its hypotheses are its own.
+    if let [t] = c {
+        let norm = t.missed + t.options.iter().map(|o| o.1).sum::<f64>();
+        let marginals = match method {
+            Method::Jpda { .. } => Marginals {
+                missed: t.missed / norm,
+                options: t.options.iter().map(|o| o.1 / norm).collect(),
+            },
+            Method::Gnn => {
+                let best = t
+                    .options
+                    .iter()
+                    .enumerate()
+                    .filter(|(_, o)| o.1 > t.missed)
+                    .max_by(|a, b| a.1.1.total_cmp(&b.1.1).then(b.0.cmp(&a.0)));
+                let mut options = vec![0.0; t.options.len()];
+                let missed = match best {
+                    Some((k, _)) => {
+                        options[k] = 1.0;
+                        0.0
+                    }
+                    None => 1.0,
+                };
+                Marginals { missed, options }
+            }
+        };
+        return ClusterOutcome {
+            marginals: vec![marginals],
+            hypotheses: t.options.len() + 1,
+            truncated: false,
+        };
+    }
     match method {
         Method::Gnn => {
             let cm = cost_matrix(c, n_dets);

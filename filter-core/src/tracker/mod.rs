@@ -15,7 +15,8 @@
 //!    existence-weighted likelihood ratios of the sensor's clutter model.
 //! 5. **Update** states (PDA combination, Joseph form) and existence (integrated PDA, Mušicki,
 //!    Evans & Stanković, IEEE TAC 39(6), 1994; joint form, Mušicki & Evans 2004).
-//! 6. **Births** from detections no track explains, **confirmation** and **ending** by existence
+//! 6. **Births** from detections no track explains (as internal candidates, reported from their
+//!    second detection on), **confirmation** and **ending** by existence
 //!    thresholds or an M-of-N rule, covariance bound and coverage; then the per-sensor health
 //!    window is updated and the [`Picture`] returned.
 //!
@@ -435,8 +436,10 @@ pub struct ScanStats {
     pub hypotheses: usize,
     /// Clusters whose hypotheses were truncated to the k best.
     pub truncated_clusters: usize,
-    /// Tracks born.
+    /// Tracks born: candidates that became reported tracks with their second detection.
     pub births: usize,
+    /// Live track candidates (one detection so far; not in pictures).
+    pub candidates: usize,
     /// Tracks ended.
     pub ended: usize,
     /// Births refused because the tracker holds [`MAX_TRACKS`] tracks.
@@ -452,7 +455,10 @@ pub struct Picture {
     pub sensor: usize,
     /// The scan's tag.
     pub tag: u64,
-    /// Every live track, ascending by id.
+    /// Every reported live track, ascending by id. A detection that no track explains starts a
+    /// *candidate*, which is kept inside the tracker and enters pictures (as tentative, with a
+    /// new id) only with its second detection; in a cluttered scan most candidates never do, so
+    /// frames stay small.
     pub tracks: Vec<TrackView>,
     /// Ids of tracks ended by this scan, ascending.
     pub ended: Vec<u64>,
@@ -555,6 +561,7 @@ const RANGE_RATE_SPAN: f64 = 50.0;
 /// Internal track state.
 #[derive(Debug, Clone)]
 struct Track {
+    /// Public id; 0 while the track is a candidate (born from one detection, not yet reported).
     id: u64,
     state: Gaussian<4>,
     existence: f64,
@@ -571,6 +578,8 @@ struct Track {
     age: u32,
     /// Existence probability at birth.
     birth_existence: f64,
+    /// A candidate found to duplicate an older track; removed at the end of the scan.
+    duplicate: bool,
 }
 
 /// A tentative track ends when its existence odds fall below this fraction of its odds at
@@ -837,7 +846,7 @@ impl Tracker {
 
     /// Live tracks now, ascending by id.
     pub fn picture(&self) -> Vec<TrackView> {
-        self.tracks.iter().map(view).collect()
+        self.tracks.iter().filter(|t| t.id != 0).map(view).collect()
     }
 
     /// Change a sensor's P_D, clutter rate or noise; applies from the next scan.
@@ -985,14 +994,17 @@ impl Tracker {
             };
             let lost = p[(0, 0)].max(p[(1, 1)]) > max_var || !tr.state.is_finite();
             let outside = !runtime.iter().any(|r| r.region.contains(x, y));
-            if by_rule || lost || outside {
-                ended.push(tr.id);
+            if by_rule || lost || outside || tr.duplicate {
+                if tr.id != 0 {
+                    ended.push(tr.id);
+                }
                 false
             } else {
                 true
             }
         });
         stats.ended = ended.len();
+        stats.candidates = self.tracks.iter().filter(|t| t.id == 0).count();
         ended.sort_unstable();
         Picture {
             time: t,
@@ -1125,22 +1137,32 @@ impl Tracker {
             }
             pair_count[ti as usize] += 1;
         }
-        let mut clusters: BTreeMap<u32, Vec<u32>> = BTreeMap::new();
+        // Group tracks with gated detections by cluster root (sorted: deterministic order).
+        let mut by_root: Vec<(u32, u32)> = Vec::with_capacity(n_tracks);
         for ti in 0..n_tracks as u32 {
             if pair_count[ti as usize] > 0 {
-                let r = find(&mut parent, ti);
-                clusters.entry(r).or_default().push(ti);
+                by_root.push((find(&mut parent, ti), ti));
             }
         }
+        by_root.sort_unstable();
+        let mut members: Vec<u32> = Vec::new();
         // 5. Associate each cluster; collect per-track marginals (missed, [(pair index, β)]).
         let mut beta0 = vec![1.0f64; n_tracks];
         let mut beta: Vec<f64> = vec![0.0; pairs.len()];
         let mut used = vec![0.0f64; zs.len()];
+        // Σ_t P(j is t's | t exists): a detection that some track would own if it exists seeds
+        // no new candidate (otherwise every young, low-existence track would spawn a duplicate
+        // of itself from its own detections).
+        let mut claimed = vec![0.0f64; zs.len()];
         let mut local: Vec<u32> = vec![u32::MAX; zs.len()];
-        for members in clusters.values() {
-            let mut dets: Vec<u32> = Vec::new();
-            let mut cands: Vec<Candidates> = Vec::with_capacity(members.len());
-            for &ti in members {
+        let mut dets: Vec<u32> = Vec::new();
+        let mut cands: Vec<Candidates> = Vec::new();
+        for group in by_root.chunk_by(|a, b| a.0 == b.0) {
+            members.clear();
+            members.extend(group.iter().map(|g| g.1));
+            dets.clear();
+            cands.clear();
+            for &ti in &members {
                 let tr = &self.tracks[ti as usize];
                 let (_, pd, _) = prepared[ti as usize]
                     .as_ref()
@@ -1243,10 +1265,25 @@ impl Tracker {
             if wsum > 0.0 {
                 ws.iter_mut().for_each(|w| *w /= wsum);
             }
+            // A candidate whose most likely detection is already claimed by an older track is
+            // that track's echo, not a new object: it is dropped before it can be reported.
+            if tr.id == 0 {
+                let best = ws[1..]
+                    .iter()
+                    .zip(&pairs[range.clone()])
+                    .max_by(|a, b| a.0.total_cmp(b.0));
+                if best.is_some_and(|(w, p)| *w > 0.5 && claimed[p.1 as usize] >= 0.5) {
+                    tr.duplicate = true;
+                }
+            }
+            for (w, p) in ws[1..].iter().zip(&pairs[range.clone()]) {
+                claimed[p.1 as usize] += w;
+            }
             tr.state = pda_combine(&tr.state, prep, &nus, &ws);
             tr.existence = r_post;
             tr.age += 1;
-            let detected = b_det > 0.5;
+            // Detected, given that the object exists: 1 − (conditional missed weight).
+            let detected = 1.0 - w0 > 0.5;
             tr.history = (tr.history << 1) | u32::from(detected);
             tr.covered = (tr.covered + 1).min(32);
             if detected {
@@ -1270,6 +1307,18 @@ impl Tracker {
                         tr.status = TrackStatus::Confirmed;
                     }
                 }
+            }
+            // A candidate becomes a reported track (and gets its id) with a second detection
+            // that raises its existence above what it had at birth (the evidence now favours an
+            // object over clutter), or when it is confirmed outright.
+            if tr.id == 0
+                && !tr.duplicate
+                && ((detected && tr.existence > tr.birth_existence)
+                    || tr.status == TrackStatus::Confirmed)
+            {
+                tr.id = self.next_id;
+                self.next_id += 1;
+                stats.births += 1;
             }
             if tr.status == TrackStatus::Confirmed {
                 health.clutter -= b_det;
@@ -1304,7 +1353,7 @@ impl Tracker {
         let noise = model.noise();
         let vel_var = self.config.initial_velocity_std.powi(2);
         for (j, z) in zs.iter().enumerate() {
-            if used[j] >= 0.5 {
+            if used[j] >= 0.5 || claimed[j] >= 0.5 {
                 continue;
             }
             if self.tracks.len() >= MAX_TRACKS {
@@ -1337,7 +1386,7 @@ impl Tracker {
                 continue;
             };
             self.tracks.push(Track {
-                id: self.next_id,
+                id: 0,
                 state,
                 existence: r0,
                 status: TrackStatus::Tentative,
@@ -1348,9 +1397,8 @@ impl Tracker {
                 misses: 0,
                 age: 0,
                 birth_existence: r0,
+                duplicate: false,
             });
-            self.next_id += 1;
-            stats.births += 1;
         }
         let rt = &mut self.runtime[s];
         rt.health.push(health);
