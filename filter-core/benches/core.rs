@@ -2,6 +2,7 @@
 //! and whole tracker scans at two scales (cost growth measured, not assumed).
 //!
 //! Run: `cargo bench -p filter-core --bench core` (figures in docs/performance.md).
+#![allow(missing_docs)]
 
 use std::hint::black_box;
 use std::time::{Duration, Instant};

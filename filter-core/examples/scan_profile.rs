@@ -1,5 +1,6 @@
 //! Profiling aid: runs tracker scans of the benchmark scene at a given size.
 //! `cargo run --release -p filter-core --example scan_profile -- 4000 50`
+#![allow(missing_docs)]
 use filter_core::sim::{Scenario, SimSensor, SimTarget, Simulator};
 use filter_core::tracker::*;
 

@@ -138,18 +138,23 @@ impl<const N: usize, const M: usize> PreparedUpdate<N, M> {
         r: SMatrix<f64, M, M>,
     ) -> Result<Self> {
         let s = (s + s.transpose()) * 0.5;
-        let chol = s.cholesky().ok_or_else(|| {
+        let singular = || {
             Error::new(
                 ErrorKind::Singular,
                 "innovation covariance is not positive definite (check the sensor noise settings)",
             )
-        })?;
-        let mut ln_det_s = 0.0;
-        let l = chol.l_dirty();
-        for i in 0..M {
-            ln_det_s += 2.0 * l[(i, i)].ln();
-        }
-        let s_inv = chol.inverse();
+        };
+        let (s_inv, ln_det_s) = if let Some(small) = small_spd_inverse(&s) {
+            small.ok_or_else(singular)?
+        } else {
+            let chol = s.cholesky().ok_or_else(singular)?;
+            let l = chol.l_dirty();
+            let mut ln_det = 0.0;
+            for i in 0..M {
+                ln_det += 2.0 * l[(i, i)].ln();
+            }
+            (chol.inverse(), ln_det)
+        };
         let gain = cross * s_inv;
         Ok(Self {
             zhat,
@@ -194,10 +199,84 @@ impl<const N: usize, const M: usize> PreparedUpdate<N, M> {
     }
 }
 
+/// Closed-form inverse and ln det of a symmetric matrix of size 1, 2 or 3 (`None` for other
+/// sizes); the inner `None` when it is not positive definite (Sylvester's criterion: every
+/// leading principal minor positive).
+fn small_spd_inverse<const M: usize>(
+    s: &SMatrix<f64, M, M>,
+) -> Option<Option<(SMatrix<f64, M, M>, f64)>> {
+    let mut inv = SMatrix::<f64, M, M>::zeros();
+    let det = match M {
+        1 => {
+            let a = s[(0, 0)];
+            inv[(0, 0)] = 1.0 / a;
+            a
+        }
+        2 => {
+            let (a, b, d) = (s[(0, 0)], s[(0, 1)], s[(1, 1)]);
+            let det = a * d - b * b;
+            if !(a > 0.0 && det > 0.0) {
+                return Some(None);
+            }
+            inv[(0, 0)] = d / det;
+            inv[(1, 1)] = a / det;
+            inv[(0, 1)] = -b / det;
+            inv[(1, 0)] = -b / det;
+            det
+        }
+        3 => {
+            let (a, b, c, d, e, f) = (
+                s[(0, 0)],
+                s[(0, 1)],
+                s[(0, 2)],
+                s[(1, 1)],
+                s[(1, 2)],
+                s[(2, 2)],
+            );
+            let (c00, c01, c02) = (d * f - e * e, c * e - b * f, b * e - c * d);
+            let det = a * c00 + b * c01 + c * c02;
+            if !(a > 0.0 && a * d - b * b > 0.0 && det > 0.0) {
+                return Some(None);
+            }
+            let (c11, c12, c22) = (a * f - c * c, b * c - a * e, a * d - b * b);
+            let v = [[c00, c01, c02], [c01, c11, c12], [c02, c12, c22]];
+            for (r, row) in v.iter().enumerate() {
+                for (k, x) in row.iter().enumerate() {
+                    inv[(r, k)] = x / det;
+                }
+            }
+            det
+        }
+        _ => return None,
+    };
+    if !(det > 0.0 && det.is_finite()) {
+        return Some(None);
+    }
+    Some(Some((inv, det.ln())))
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
-    use nalgebra::{Matrix2, Vector2};
+    use nalgebra::{Matrix2, Matrix3, Vector2};
+
+    // The closed forms agree with nalgebra's general inverse and determinant.
+    #[test]
+    fn small_inverse_matches_general_inverse() {
+        let s2 = Matrix2::new(4.0, 1.0, 1.0, 3.0);
+        let (i2, l2) = small_spd_inverse(&s2).unwrap().unwrap();
+        assert!((i2 - s2.try_inverse().unwrap()).abs().max() < 1e-15);
+        assert!((l2 - 11f64.ln()).abs() < 1e-15);
+        let s3 = Matrix3::new(9.0, 2.0, 0.0, 2.0, 4.0, 1.0, 0.0, 1.0, 1.0);
+        let (i3, l3) = small_spd_inverse(&s3).unwrap().unwrap();
+        assert!((i3 - s3.try_inverse().unwrap()).abs().max() < 1e-15);
+        assert!((l3 - s3.determinant().ln()).abs() < 1e-14);
+        assert!(
+            small_spd_inverse(&Matrix2::new(1.0, 2.0, 2.0, 1.0))
+                .unwrap()
+                .is_none()
+        );
+    }
 
     #[test]
     fn rejects_bad_covariances_with_reasons() {

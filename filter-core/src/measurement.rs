@@ -4,7 +4,7 @@
 //! Conventions: the state's first four entries are x, y (m, east and north) and vx, vy (m/s),
 //! whatever the motion model. Bearings are measured clockwise from north; at the edge of the
 //! library (configuration, wire) they are in degrees, inside they are radians. A polar
-//! measurement vector is (r [m], b [rad]) or (r [m], b [rad], ṙ [m/s], positive when opening).
+//! measurement vector is (r in m, b in rad) or (r in m, b in rad, ṙ in m/s, positive when opening).
 //! Bearing innovations are wrapped to the half-open interval [−π, π).
 
 use std::f64::consts::PI;

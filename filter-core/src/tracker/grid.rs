@@ -135,7 +135,7 @@ mod tests {
         }
         // Nothing farther than one (possibly enlarged) cell outside the box comes back.
         let c = g.cell;
-        assert!(c >= 50.0 && c < 60.0, "cell {c}");
+        assert!((50.0..60.0).contains(&c), "cell {c}");
         for &i in &out {
             let p = pts[i as usize];
             assert!(
