@@ -1,0 +1,301 @@
+//! Load generator: starts a `plotweave serve` on loopback with an invented load site, then
+//! measures over real WebSocket connections
+//! 1. sustained throughput: `--sensors` connections send batches of `--detections` detections
+//!    as fast as acknowledgements allow (each keeps `--window` batches in flight) for
+//!    `--seconds`, while `--subscribers` frame consumers read every frame;
+//! 2. ingest-to-frame latency at half that rate: batches paced evenly, latency measured from
+//!    the send of a batch to the arrival of its frame at a subscriber.
+//!
+//! ```text
+//! cargo build --release -p plotweave-tests --bins
+//! target/release/loadgen --bin target/release/plotweave-under-test
+//! ```
+//! Bounded in count and time, loopback only. Prints a summary and one JSON line.
+#![allow(missing_docs)]
+
+use std::collections::HashMap;
+use std::path::PathBuf;
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use anyhow::{Context, Result, bail};
+use clap::Parser;
+use futures_util::{SinkExt, StreamExt};
+use plotweave_tests::{Server, temp_dir, write_file};
+use tokio_tungstenite::connect_async;
+use tokio_tungstenite::tungstenite::Message;
+
+#[derive(Parser, Debug, Clone)]
+struct Args {
+    /// The plotweave binary to start.
+    #[arg(long, default_value = "target/release/plotweave-under-test")]
+    bin: PathBuf,
+    /// Sensor connections (each its own sensor).
+    #[arg(long, default_value_t = 1)]
+    sensors: usize,
+    /// Detections per batch.
+    #[arg(long, default_value_t = 1000)]
+    detections: usize,
+    /// Batches in flight per connection.
+    #[arg(long, default_value_t = 4)]
+    window: usize,
+    /// Frame subscribers.
+    #[arg(long, default_value_t = 2)]
+    subscribers: usize,
+    /// Seconds per phase.
+    #[arg(long, default_value_t = 10.0)]
+    seconds: f64,
+    /// Real objects per sensor (the rest of each batch is clutter).
+    #[arg(long, default_value_t = 20)]
+    objects: usize,
+}
+
+fn site(args: &Args) -> String {
+    // Batches are stamped with the wall clock when sent. One connection keeps them in order;
+    // several connections race each other by microseconds, so they need a reorder window,
+    // whose hold then adds to the measured latency.
+    let window = if args.sensors > 1 { 0.05 } else { 0.0 };
+    let mut s = format!(
+        "[site]\nname = \"Loadgen Reach\"\n\n[tracker]\nassociation = \"jpda\"\nreorder_window = {window}\n\n"
+    );
+    for k in 0..args.sensors {
+        let x0 = k as f64 * 20_000.0;
+        s.push_str(&format!(
+            "[[sensor]]\nid = \"load-{k}\"\nkind = \"cartesian\"\nnoise = {{ sigma = 5.0 }}\n\
+             fov = {{ x_min = {x0}, x_max = {}, y_min = 0.0, y_max = 10000.0 }}\n\
+             detection_probability = 0.9\nclutter_rate = {}\nbirth_rate = 0.05\n\n",
+            x0 + 10_000.0,
+            args.detections.saturating_sub(args.objects) as f64
+        ));
+    }
+    s.push_str(&format!(
+        "[server.limits]\nmax_message_bytes = 16777216\nmax_detections = {}\n\
+         max_batches_per_second = 100000.0\nmax_connections = 1024\nqueue_depth = 256\nframe_buffer = 1024\n",
+        args.detections.max(1)
+    ));
+    s
+}
+
+/// Deterministic batch `seq` of sensor `k`: `objects` straight-line movers plus uniform clutter.
+fn batch(args: &Args, k: usize, seq: u64) -> String {
+    let x0 = k as f64 * 20_000.0;
+    let t = seq as f64;
+    let mut out = String::with_capacity(args.detections * 40 + 80);
+    out.push_str(&format!(
+        "{{\"sensor\":\"load-{k}\",\"seq\":{seq},\"time\":{},\"detections\":[",
+        1.8e9 + t
+    ));
+    let mut state = seq
+        .wrapping_mul(6364136223846793005)
+        .wrapping_add(k as u64 * 1442695040888963407 + 1);
+    let mut rnd = || {
+        state ^= state << 13;
+        state ^= state >> 7;
+        state ^= state << 17;
+        (state >> 11) as f64 / (1u64 << 53) as f64
+    };
+    for i in 0..args.detections {
+        let (x, y) = if i < args.objects {
+            let row = i as f64;
+            (
+                x0 + 500.0 + (7.0 * t).rem_euclid(9000.0),
+                250.0 + row * 450.0,
+            )
+        } else {
+            (x0 + 10_000.0 * rnd(), 10_000.0 * rnd())
+        };
+        if i > 0 {
+            out.push(',');
+        }
+        out.push_str(&format!("{{\"x\":{x:.2},\"y\":{y:.2}}}"));
+    }
+    out.push_str("]}");
+    out
+}
+
+type Sent = Arc<Mutex<HashMap<(usize, u64), Instant>>>;
+
+struct PhaseResult {
+    batches: u64,
+    detections: u64,
+    seconds: f64,
+    latencies_ms: Vec<f64>,
+    frames: Vec<u64>,
+    skipped: Vec<u64>,
+}
+
+async fn phase(addr: &str, args: &Args, pace: Option<f64>, seq0: u64) -> Result<PhaseResult> {
+    let sent: Sent = Arc::new(Mutex::new(HashMap::new()));
+    let deadline = Instant::now() + Duration::from_secs_f64(args.seconds);
+    let mut subs = Vec::new();
+    for s in 0..args.subscribers {
+        let url = format!("ws://{addr}/v1/frames");
+        let (mut ws, _) = connect_async(url.as_str())
+            .await
+            .context("frames subscriber")?;
+        let sent = sent.clone();
+        subs.push(tokio::spawn(async move {
+            let (mut frames, mut skipped, mut lat) = (0u64, 0u64, Vec::new());
+            let stop = deadline + Duration::from_secs(3);
+            while let Ok(Some(Ok(msg))) = tokio::time::timeout_at(stop.into(), ws.next()).await {
+                let Message::Text(t) = msg else { continue };
+                let now = Instant::now();
+                // Cheap field scan: frames start with {"time":..,"sensor":"load-K","seq":N
+                let v: serde_json::Value = match serde_json::from_str(&t) {
+                    Ok(v) => v,
+                    Err(_) => continue,
+                };
+                if let Some(n) = v.get("skipped").and_then(|n| n.as_u64()) {
+                    skipped += n;
+                    continue;
+                }
+                frames += 1;
+                if s == 0 {
+                    let k = v["sensor"]
+                        .as_str()
+                        .and_then(|id| id.strip_prefix("load-"))
+                        .and_then(|k| k.parse::<usize>().ok());
+                    if let (Some(k), Some(seq)) = (k, v["seq"].as_u64()) {
+                        if let Some(t0) = sent.lock().unwrap().remove(&(k, seq)) {
+                            lat.push((now - t0).as_secs_f64() * 1e3);
+                        }
+                    }
+                }
+                if now > stop {
+                    break;
+                }
+            }
+            (frames, skipped, lat)
+        }));
+    }
+    tokio::time::sleep(Duration::from_millis(200)).await;
+    let started = Instant::now();
+    let mut senders = Vec::new();
+    for k in 0..args.sensors {
+        let url = format!("ws://{addr}/v1/ingest");
+        let (ws, _) = connect_async(url.as_str())
+            .await
+            .context("ingest connection")?;
+        let (mut tx, mut rx) = ws.split();
+        let args = args.clone();
+        let sent = sent.clone();
+        senders.push(tokio::spawn(async move {
+            let mut seq = seq0;
+            let mut acked = 0u64;
+            let mut in_flight = 0usize;
+            let interval = pace.map(|p| Duration::from_secs_f64(args.sensors as f64 / p));
+            let mut next_at = Instant::now();
+            loop {
+                while in_flight < args.window && Instant::now() < deadline {
+                    if let Some(iv) = interval {
+                        tokio::time::sleep_until(next_at.into()).await;
+                        next_at += iv;
+                    }
+                    let text = batch(&args, k, seq);
+                    sent.lock().unwrap().insert((k, seq), Instant::now());
+                    if tx.send(Message::Text(text.into())).await.is_err() {
+                        return Ok::<u64, anyhow::Error>(acked);
+                    }
+                    seq += 1;
+                    in_flight += 1;
+                }
+                if in_flight == 0 {
+                    break;
+                }
+                match rx.next().await {
+                    Some(Ok(Message::Text(t))) => {
+                        in_flight -= 1;
+                        if t.contains("\"ack\"") {
+                            acked += 1;
+                        } else {
+                            bail!("batch rejected: {t}");
+                        }
+                    }
+                    Some(Ok(_)) => {}
+                    _ => break,
+                }
+            }
+            let _ = tx.send(Message::Close(None)).await;
+            Ok(acked)
+        }));
+    }
+    let mut batches = 0;
+    for s in senders {
+        batches += s.await??;
+    }
+    let seconds = started.elapsed().as_secs_f64();
+    let (mut frames, mut skipped, mut lat) = (Vec::new(), Vec::new(), Vec::new());
+    for s in subs {
+        let (f, sk, l) = s.await?;
+        frames.push(f);
+        skipped.push(sk);
+        lat.extend(l);
+    }
+    lat.sort_by(f64::total_cmp);
+    Ok(PhaseResult {
+        batches,
+        detections: batches * args.detections as u64,
+        seconds,
+        latencies_ms: lat,
+        frames,
+        skipped,
+    })
+}
+
+fn pct(v: &[f64], p: f64) -> f64 {
+    if v.is_empty() {
+        return f64::NAN;
+    }
+    v[((v.len() - 1) as f64 * p).round() as usize]
+}
+
+fn peak_rss_mib(pid: u32) -> Option<f64> {
+    let s = std::fs::read_to_string(format!("/proc/{pid}/status")).ok()?;
+    let line = s.lines().find(|l| l.starts_with("VmHWM:"))?;
+    let kb: f64 = line.split_whitespace().nth(1)?.parse().ok()?;
+    Some(kb / 1024.0)
+}
+
+#[tokio::main]
+async fn main() -> Result<()> {
+    let args = Args::parse();
+    let dir = temp_dir("loadgen");
+    let cfg = write_file(&dir, "load-site.toml", &site(&args));
+    let server = Server::start(
+        &args.bin,
+        &["serve", "--config", cfg.to_str().unwrap_or_default()],
+    )?;
+    let addr = server.addr.clone();
+    let full = phase(&addr, &args, None, 1).await?;
+    let rate = full.batches as f64 / full.seconds;
+    let half = phase(&addr, &args, Some(rate / 2.0), 1_000_000).await?;
+    let rss = server.pid().and_then(peak_rss_mib);
+    let det_rate = full.detections as f64 / full.seconds;
+    println!(
+        "throughput: {:.0} detections/s ({:.0} batches/s of {} detections, {} sensors, window {}), frames per subscriber {:?}, skipped {:?}",
+        det_rate, rate, args.detections, args.sensors, args.window, full.frames, full.skipped
+    );
+    println!(
+        "latency at half load ({:.0} batches/s): p50 {:.3} ms, p99 {:.3} ms over {} frames; at full load p50 {:.3} ms, p99 {:.3} ms",
+        half.batches as f64 / half.seconds,
+        pct(&half.latencies_ms, 0.5),
+        pct(&half.latencies_ms, 0.99),
+        half.latencies_ms.len(),
+        pct(&full.latencies_ms, 0.5),
+        pct(&full.latencies_ms, 0.99)
+    );
+    if let Some(r) = rss {
+        println!("server peak resident memory: {r:.1} MiB");
+    }
+    println!(
+        "{}",
+        serde_json::json!({
+            "detections_per_second": det_rate, "batches_per_second": rate, "detections_per_batch": args.detections,
+            "sensors": args.sensors, "subscribers": args.subscribers, "frames": full.frames, "skipped": full.skipped,
+            "half_load_p50_ms": pct(&half.latencies_ms, 0.5), "half_load_p99_ms": pct(&half.latencies_ms, 0.99),
+            "full_load_p99_ms": pct(&full.latencies_ms, 0.99), "peak_rss_mib": rss,
+        })
+    );
+    drop(server);
+    Ok(())
+}
