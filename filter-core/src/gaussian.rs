@@ -278,6 +278,51 @@ mod tests {
         );
     }
 
+    use crate::measurement::{CartesianPosition, RangeBearing};
+    use crate::motion::{ConstantVelocity, MotionModel};
+    use nalgebra::{Matrix4, Vector4};
+    use proptest::prelude::*;
+
+    fn psd(p: &Matrix4<f64>) -> bool {
+        let scale = p.abs().max().max(1e-300);
+        (p - p.transpose()).abs().max() <= 1e-12 * scale
+            && (p + Matrix4::identity() * (1e-10 * scale))
+                .cholesky()
+                .is_some()
+    }
+
+    proptest! {
+        // Long random predict/update sequences (cartesian and polar, time steps from 1 ms to
+        // 100 s, measurements anywhere within 100 km, noise from centimetres to kilometres)
+        // keep the covariance symmetric positive semi-definite and everything finite.
+        #[test]
+        fn covariance_stays_symmetric_psd(
+            steps in proptest::collection::vec(
+                (1e-3..100.0f64, any::<bool>(), -1e5..1e5f64, -1e5..1e5f64, 1e-2..1e3f64), 1..200))
+        {
+            let cv = ConstantVelocity::continuous(0.5).unwrap();
+            let mut g = Gaussian::new(Vector4::new(10.0, 20.0, 1.0, 1.0), Matrix4::identity() * 100.0).unwrap();
+            for (dt, polar, x, y, sigma) in steps {
+                g = cv.predict(&g, dt).unwrap();
+                if polar {
+                    let m = RangeBearing::new([0.0, 0.0], sigma, (sigma / 100.0).min(10.0)).unwrap();
+                    let z = nalgebra::Vector2::new(x.hypot(y), crate::measurement::bearing_of(x, y));
+                    if let Ok(prep) = g.prepare::<2, _>(&m) {
+                        let nu = <RangeBearing as MeasurementModel<4, 2>>::residual(&m, &z, &prep.zhat);
+                        g = prep.apply(&g, &nu);
+                    }
+                } else {
+                    let m = CartesianPosition::new(sigma).unwrap();
+                    let prep = g.prepare::<2, _>(&m).unwrap();
+                    let nu = nalgebra::Vector2::new(x, y) - prep.zhat;
+                    g = prep.apply(&g, &nu);
+                }
+                prop_assert!(g.is_finite());
+                prop_assert!(psd(g.cov()), "{}", g.cov());
+            }
+        }
+    }
+
     #[test]
     fn rejects_bad_covariances_with_reasons() {
         let m = Vector2::new(0.0, 0.0);

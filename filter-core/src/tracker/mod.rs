@@ -846,7 +846,10 @@ impl Tracker {
 
     /// Live tracks now, ascending by id.
     pub fn picture(&self) -> Vec<TrackView> {
-        self.tracks.iter().filter(|t| t.id != 0).map(view).collect()
+        // Ids are given at promotion, so creation order is not id order: sort (ids are unique).
+        let mut v: Vec<TrackView> = self.tracks.iter().filter(|t| t.id != 0).map(view).collect();
+        v.sort_unstable_by_key(|t| t.id);
+        v
     }
 
     /// Change a sensor's P_D, clutter rate or noise; applies from the next scan.

@@ -1,1 +1,314 @@
+//! Unit and property tests of the tracker: ordering and the reorder window, ids, runtime
+//! parameter changes, M-of-N management, and invariants over arbitrary scan sequences.
 
+use super::*;
+use proptest::prelude::*;
+
+fn camera() -> SensorConfig {
+    SensorConfig {
+        id: "quay-camera".into(),
+        kind: SensorKind::Cartesian { sigma: 3.0 },
+        fov: FieldOfView::Rect {
+            x_min: -2000.0,
+            x_max: 2000.0,
+            y_min: -2000.0,
+            y_max: 2000.0,
+        },
+        detection_probability: 0.9,
+        clutter_rate: 1.0,
+        birth_rate: 0.05,
+    }
+}
+
+fn radar() -> SensorConfig {
+    SensorConfig {
+        id: "spit-radar".into(),
+        kind: SensorKind::Polar {
+            x: 0.0,
+            y: -500.0,
+            sigma_range: 8.0,
+            sigma_bearing_deg: 0.3,
+            sigma_range_rate: None,
+        },
+        fov: FieldOfView::Sector {
+            min_range: 0.0,
+            max_range: 5000.0,
+            bearing_start_deg: 0.0,
+            bearing_extent_deg: 360.0,
+        },
+        detection_probability: 0.9,
+        clutter_rate: 5.0,
+        birth_rate: 0.05,
+    }
+}
+
+fn scan(sensor: usize, time: f64, tag: u64, pts: &[(f64, f64)]) -> Scan {
+    Scan {
+        sensor,
+        time,
+        tag,
+        detections: pts
+            .iter()
+            .map(|&(x, y)| Measurement::Cartesian { x, y })
+            .collect(),
+    }
+}
+
+#[test]
+fn late_scans_are_refused_with_a_reason() {
+    let mut t = Tracker::new(TrackerConfig::default(), vec![camera()]).unwrap();
+    t.submit(scan(0, 10.0, 1, &[])).unwrap();
+    let e = t.submit(scan(0, 9.5, 2, &[])).unwrap_err();
+    assert_eq!(e.kind(), ErrorKind::LateScan);
+    assert!(
+        e.to_string()
+            .contains("0.500 s older than the picture time 10"),
+        "{e}"
+    );
+    assert_eq!(
+        t.submit(scan(3, 11.0, 3, &[])).unwrap_err().kind(),
+        ErrorKind::UnknownSensor
+    );
+    let bad = Scan {
+        sensor: 0,
+        time: 12.0,
+        tag: 4,
+        detections: vec![Measurement::Polar {
+            range: 1.0,
+            bearing_deg: 0.0,
+            range_rate: None,
+        }],
+    };
+    assert!(
+        t.submit(bad)
+            .unwrap_err()
+            .to_string()
+            .contains("detections[0] is polar but sensor quay-camera is cartesian")
+    );
+    let nan = scan(0, 12.0, 5, &[(f64::NAN, 0.0)]);
+    assert_eq!(t.submit(nan).unwrap_err().kind(), ErrorKind::InvalidInput);
+}
+
+#[test]
+fn reorder_window_applies_buffered_scans_in_time_order() {
+    let cfg = TrackerConfig {
+        reorder_window: 1.0,
+        ..TrackerConfig::default()
+    };
+    let mut t = Tracker::new(cfg, vec![camera(), radar()]).unwrap();
+    assert!(t.submit(scan(0, 10.0, 1, &[])).unwrap().is_empty());
+    // Older than the newest, but inside the window: buffered, not refused.
+    assert!(t.submit(scan(0, 9.6, 2, &[])).unwrap().is_empty());
+    assert_eq!(t.pending(), 2);
+    let out = t.submit(scan(0, 11.2, 3, &[])).unwrap();
+    let tags: Vec<u64> = out.iter().map(|p| p.tag).collect();
+    assert_eq!(
+        tags,
+        vec![2, 1],
+        "released in time order up to newest − window"
+    );
+    // Now the picture is at 10.0: a scan at 9.9 is refused.
+    assert_eq!(
+        t.submit(scan(0, 9.9, 4, &[])).unwrap_err().kind(),
+        ErrorKind::LateScan
+    );
+    let rest = t.flush();
+    assert_eq!(rest.iter().map(|p| p.tag).collect::<Vec<_>>(), vec![3]);
+    assert_eq!(t.pending(), 0);
+}
+
+#[test]
+fn ids_are_never_reused_and_ended_tracks_are_reported() {
+    let mut t = Tracker::new(TrackerConfig::default(), vec![camera()]).unwrap();
+    let mut seen = std::collections::BTreeSet::new();
+    let mut ended_all = std::collections::BTreeSet::new();
+    for k in 0..40u64 {
+        // a target for 15 scans, then nothing
+        let pts: Vec<(f64, f64)> = if k < 15 {
+            vec![(100.0 + 5.0 * k as f64, 50.0)]
+        } else {
+            vec![]
+        };
+        for p in t.submit(scan(0, k as f64, k, &pts)).unwrap() {
+            for tr in &p.tracks {
+                assert!(!ended_all.contains(&tr.id), "ended id {} came back", tr.id);
+                seen.insert(tr.id);
+            }
+            ended_all.extend(p.ended.iter().copied());
+        }
+    }
+    assert!(!seen.is_empty());
+    assert_eq!(
+        seen, ended_all,
+        "every reported track ended once the target left"
+    );
+}
+
+#[test]
+fn runtime_parameter_change_is_validated_and_applied() {
+    let mut t = Tracker::new(TrackerConfig::default(), vec![camera(), radar()]).unwrap();
+    t.update_sensor(
+        1,
+        &SensorParams {
+            detection_probability: Some(0.7),
+            clutter_rate: Some(12.0),
+            ..SensorParams::default()
+        },
+    )
+    .unwrap();
+    assert_eq!(t.sensor_health(1).configured_detection_probability, 0.7);
+    assert_eq!(t.sensors()[1].clutter_rate, 12.0);
+    let e = t
+        .update_sensor(
+            1,
+            &SensorParams {
+                detection_probability: Some(1.5),
+                ..SensorParams::default()
+            },
+        )
+        .unwrap_err();
+    assert_eq!(
+        e.to_string(),
+        "sensor spit-radar: detection probability must be in (0, 1], got 1.5"
+    );
+    assert!(
+        t.update_sensor(
+            0,
+            &SensorParams {
+                sigma_range: Some(3.0),
+                ..SensorParams::default()
+            }
+        )
+        .is_err()
+    );
+    assert_eq!(
+        t.sensors()[1].detection_probability,
+        0.7,
+        "a refused change leaves the sensor as it was"
+    );
+}
+
+#[test]
+fn m_of_n_confirms_after_m_detections() {
+    let cfg = TrackerConfig {
+        management: Management::MOfN {
+            m: 3,
+            n: 4,
+            max_misses: 3,
+        },
+        ..TrackerConfig::default()
+    };
+    let mut t = Tracker::new(cfg, vec![camera()]).unwrap();
+    let mut first_confirmed = None;
+    for k in 0..8u64 {
+        let p = t
+            .submit(scan(0, k as f64, k, &[(10.0 * k as f64, 0.0)]))
+            .unwrap()
+            .pop()
+            .unwrap();
+        if first_confirmed.is_none()
+            && p.tracks
+                .iter()
+                .any(|tr| tr.status == TrackStatus::Confirmed)
+        {
+            first_confirmed = Some(k);
+        }
+    }
+    // Detections in scans 0, 1, 2: three hits after the third scan.
+    assert_eq!(first_confirmed, Some(2));
+    assert!(
+        TrackerConfig {
+            management: Management::MOfN {
+                m: 5,
+                n: 4,
+                max_misses: 1
+            },
+            ..TrackerConfig::default()
+        }
+        .validate()
+        .is_err()
+    );
+}
+
+#[test]
+fn configuration_errors_name_the_field() {
+    let mut c = camera();
+    c.fov = FieldOfView::Sector {
+        min_range: 0.0,
+        max_range: 10.0,
+        bearing_start_deg: 0.0,
+        bearing_extent_deg: 90.0,
+    };
+    assert_eq!(
+        c.validate().unwrap_err().to_string(),
+        "sensor quay-camera: a cartesian sensor needs a rectangular field of view"
+    );
+    let cfg = TrackerConfig {
+        management: Management::Existence {
+            confirm: 0.5,
+            delete: 0.6,
+        },
+        ..TrackerConfig::default()
+    };
+    assert!(
+        cfg.validate()
+            .unwrap_err()
+            .to_string()
+            .contains("delete threshold must be below the confirm threshold")
+    );
+    assert!(
+        Tracker::new(TrackerConfig::default(), vec![camera(), camera()])
+            .unwrap_err()
+            .to_string()
+            .contains("configured twice")
+    );
+}
+
+fn is_psd(c: &[[f64; 4]; 4]) -> bool {
+    let m = Matrix4::from_fn(|i, j| c[i][j]);
+    let scale = m.abs().max().max(1e-300);
+    (0..4).all(|i| (0..4).all(|j| (m[(i, j)] - m[(j, i)]).abs() <= 1e-9 * scale))
+        && (m + Matrix4::identity() * (1e-9 * scale))
+            .cholesky()
+            .is_some()
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 48, ..ProptestConfig::default() })]
+    // Arbitrary sequences of valid scans (any mix of sensors, irregular steps, extreme but
+    // finite positions) never panic, never produce NaN, keep covariances symmetric PSD and
+    // existence in [0, 1].
+    #[test]
+    fn arbitrary_scans_keep_the_picture_sane(
+        steps in proptest::collection::vec(
+            (0usize..2, 0.0..5.0f64, proptest::collection::vec((-3000.0..3000.0f64, -3000.0..3000.0f64), 0..12)),
+            1..40),
+        gnn in any::<bool>())
+    {
+        let cfg = TrackerConfig {
+            association: if gnn { AssociationMethod::Gnn } else { AssociationMethod::Jpda { max_exact_hypotheses: 50, k_best: 10 } },
+            ..TrackerConfig::default()
+        };
+        let mut t = Tracker::new(cfg, vec![camera(), radar()]).unwrap();
+        let mut time = 0.0;
+        for (k, (sensor, dt, pts)) in steps.iter().enumerate() {
+            time += dt;
+            let detections = match sensor {
+                0 => pts.iter().map(|&(x, y)| Measurement::Cartesian { x, y }).collect(),
+                _ => pts.iter().map(|&(x, y)| {
+                    let (dx, dy) = (x, y + 500.0);
+                    Measurement::Polar { range: dx.hypot(dy), bearing_deg: dx.atan2(dy).to_degrees().rem_euclid(360.0), range_rate: None }
+                }).collect(),
+            };
+            let pics = t.submit(Scan { sensor: *sensor, time, tag: k as u64, detections }).unwrap();
+            for p in pics {
+                for tr in &p.tracks {
+                    prop_assert!(tr.state.iter().all(|v| v.is_finite()));
+                    prop_assert!((0.0..=1.0).contains(&tr.existence));
+                    prop_assert!(is_psd(&tr.covariance), "covariance not PSD: {:?}", tr.covariance);
+                }
+                prop_assert!(p.tracks.windows(2).all(|w| w[0].id < w[1].id));
+            }
+        }
+    }
+}
