@@ -98,6 +98,8 @@ pub struct ServerConfig {
     pub limits: Limits,
     /// How long a graceful shutdown may take before the process exits anyway (default 10 s).
     pub shutdown_timeout: Duration,
+    /// `[server.recording]` when enabled: accepted batches are written there before the ack.
+    pub recording: Option<crate::record::RecordingConfig>,
 }
 
 /// What the service needs to know about a sensor beyond the core's [`SensorConfig`].
@@ -286,6 +288,11 @@ struct RawLimits {
 #[serde(deny_unknown_fields)]
 struct RawRecording {
     enabled: Option<bool>,
+    directory: Option<String>,
+    rotate_bytes: Option<i64>,
+    rotate_seconds: Option<f64>,
+    sync: Option<String>,
+    sync_interval_ms: Option<i64>,
 }
 
 // ---- validation ---------------------------------------------------------------------------
@@ -1042,21 +1049,62 @@ fn server_config(
             limits.frame_buffer = p.int(&at("frame_buffer"), v, 1, 1_000_000);
         }
     }
-    if let Some(r) = raw.recording
-        && r.enabled == Some(true)
-    {
-        p.add(
-            "server.recording.enabled",
-            "recording is not available in this version of plotweave; set false or remove [server.recording]",
-        );
-    }
+    let recording = raw.recording.and_then(|r| recording_config(p, r));
     ServerConfig {
         listen,
         read_token,
         admin_token,
         limits,
         shutdown_timeout: Duration::from_secs_f64(shutdown_timeout),
+        recording,
     }
+}
+
+/// `[server.recording]`: `None` unless `enabled = true` (then `directory` is required).
+fn recording_config(p: &mut Problems, r: RawRecording) -> Option<crate::record::RecordingConfig> {
+    use crate::record::{RecordingConfig, SyncPolicy};
+    let at = |k: &str| format!("server.recording.{k}");
+    let rotate_bytes = r
+        .rotate_bytes
+        .map(|v| p.int(&at("rotate_bytes"), v, 4096, i64::MAX) as u64);
+    let rotate_seconds = r
+        .rotate_seconds
+        .map(|v| p.positive(&at("rotate_seconds"), v, " s"));
+    let interval = r
+        .sync_interval_ms
+        .map(|v| p.int(&at("sync_interval_ms"), v, 1, 3_600_000));
+    let sync = match r.sync.as_deref() {
+        None | Some("fsync") => SyncPolicy::Fsync,
+        Some("none") => SyncPolicy::None,
+        Some("flush") => SyncPolicy::Flush,
+        Some("interval") => {
+            let ms = interval.unwrap_or(1000) as u64;
+            SyncPolicy::Interval(Duration::from_millis(ms))
+        }
+        Some(other) => {
+            p.add(
+                at("sync"),
+                format!("must be \"none\", \"flush\", \"fsync\" or \"interval\", got {other:?}"),
+            );
+            SyncPolicy::Fsync
+        }
+    };
+    if interval.is_some() && !matches!(sync, SyncPolicy::Interval(_)) {
+        p.add(at("sync_interval_ms"), "only used with sync = \"interval\"");
+    }
+    if r.enabled != Some(true) {
+        return None;
+    }
+    let directory = p.required(&at("directory"), r.directory, "where recording files go")?;
+    if directory.trim().is_empty() {
+        p.add(at("directory"), "must not be blank");
+    }
+    Some(RecordingConfig {
+        directory: directory.into(),
+        rotate_bytes,
+        rotate_seconds,
+        sync,
+    })
 }
 
 /// A one-screen summary of a valid site, printed by `plotweave check`.
@@ -1110,6 +1158,17 @@ pub fn summary(site: &Site) -> String {
             "none"
         }
     );
+    if let Some(r) = &site.server.recording {
+        let _ = writeln!(
+            s,
+            "recording: into {}, sync {:?}, rotate at {} bytes / {} s",
+            r.directory.display(),
+            r.sync,
+            r.rotate_bytes.map_or("no limit".into(), |b| b.to_string()),
+            r.rotate_seconds
+                .map_or("no limit".into(), |t| t.to_string())
+        );
+    }
     s
 }
 

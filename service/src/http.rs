@@ -8,12 +8,15 @@
 //! | `GET /v1/tracks` | the latest frame; filters below | read |
 //! | `GET /v1/tracks/{id}` | one live track with its recent history (at most [`TRACK_HISTORY_LEN`](crate::pipeline::TRACK_HISTORY_LEN) points) | read |
 //! | `GET /v1/sensors` | configuration and live health of every sensor | read |
+//! | `GET /v1/detections` (WebSocket) | each accepted scan's detections in the site frame ([`crate::echo`]) | read |
+//! | `GET /`, `GET /assets/*` | the live situation page ([`crate::page`]); it holds no data | none |
 //! | `POST /v1/admin/sensors/{id}` | change P_D, clutter rate or noise from the next batch | admin |
 //! | `GET /metrics` | Prometheus text format | none |
 //! | `GET /healthz`, `GET /readyz` | liveness; readiness (503 while shutting down) | none |
 //!
-//! "read" accepts the read token or the admin token; with no read token configured these
-//! paths are open. Filters (query string, all optional, combined with AND, each applied per
+//! "read" accepts the read token or the admin token (as `Authorization: Bearer TOKEN`, or on a
+//! WebSocket upgrade as the subprotocol `plotweave.bearer.HEX`, see [`crate::page`]); with no
+//! read token configured these paths are open. Filters (query string, all optional, combined with AND, each applied per
 //! track; `ended` is always complete): `sensor=ID[,ID...]` keeps tracks that one of these
 //! sensors contributed to, `status=tentative|confirmed`, `bbox=xmin,ymin,xmax,ymax` (site
 //! frame, m) keeps tracks whose position is inside.
@@ -54,6 +57,8 @@ pub fn app(state: AppState) -> Router {
         .route("/metrics", get(metrics))
         .route("/healthz", get(healthz))
         .route("/readyz", get(readyz))
+        .route("/v1/detections", get(crate::echo::detections))
+        .merge(crate::page::router())
         .fallback(not_found)
         .with_state(state)
 }
@@ -86,12 +91,14 @@ fn bearer(headers: &HeaderMap) -> Result<Option<&str>, Rejection> {
     Ok(Some(token))
 }
 
-fn require_read(state: &AppState, headers: &HeaderMap) -> Result<(), Rejection> {
+pub(crate) fn require_read(state: &AppState, headers: &HeaderMap) -> Result<(), Rejection> {
     let server = &state.site().server;
     let Some(read) = &server.read_token else {
         return Ok(());
     };
-    let token = bearer(headers)?.ok_or_else(|| {
+    // Browsers cannot set headers on a WebSocket: they offer the token as a subprotocol.
+    let offered = crate::page::protocol_token(headers)?;
+    let token = bearer(headers)?.or(offered.as_deref()).ok_or_else(|| {
         Rejection::new(
             Code::Unauthorized,
             None,
@@ -341,18 +348,19 @@ async fn frames(
     };
     let span = tracing::info_span!("frames", conn = slot.id, %peer);
     let tasks = state.0.consumers.clone();
-    ws.on_upgrade(move |socket| {
-        tasks.track_future(
-            async move {
-                tracing::info!("subscribed");
-                let (sink, stream) = socket.split();
-                frames_session(state, filter, sink, stream).await;
-                drop(slot);
-                tracing::info!("unsubscribed");
-            }
-            .instrument(span),
-        )
-    })
+    ws.protocols([crate::page::WS_PROTOCOL])
+        .on_upgrade(move |socket| {
+            tasks.track_future(
+                async move {
+                    tracing::info!("subscribed");
+                    let (sink, stream) = socket.split();
+                    frames_session(state, filter, sink, stream).await;
+                    drop(slot);
+                    tracing::info!("unsubscribed");
+                }
+                .instrument(span),
+            )
+        })
 }
 
 fn json(status: StatusCode, body: String) -> Response {
@@ -453,6 +461,7 @@ async fn sensors(State(state): State<AppState>, headers: HeaderMap) -> Result<Re
                 "clutter_rate": c.clutter_rate,
                 "birth_rate": c.birth_rate,
                 "period": site.sensor_extra[i].period,
+                "fov": crate::page::fov_json(&c.fov),
                 "token_required": site.sensor_extra[i].token.is_some(),
                 "last_seq": gates[i].0,
                 "last_time": gates[i].1,

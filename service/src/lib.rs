@@ -4,7 +4,10 @@
 //! Sensors send detection batches over a WebSocket (`/v1/ingest`); the service checks each
 //! batch, feeds it to the site's [`filter_core::tracker::Tracker`], and sends a track frame
 //! per batch to every subscriber (`/v1/frames`). `plotweave batch` runs a recording through
-//! the very same pipeline offline, byte-for-byte reproducibly.
+//! the very same pipeline offline, byte-for-byte reproducibly. [`record`] writes recordings
+//! from the live service and reads them back, [`replay`] sends one to another service,
+//! [`scenario`] simulates traffic into a recording with its truth, and [`score`] measures
+//! frames against that truth.
 //!
 //! The main type is [`server::AppState`] (one per site); the path of a batch is
 //! [`wire::decode_batch`] → [`pipeline::Admission::admit`] → the engine thread
@@ -17,13 +20,15 @@
 //! let site = Site::demo(|_| None).unwrap();
 //! let recording = r#"{"sensor":"north-mole-camera","seq":1,"time":1764600000.0,"detections":[{"x":10.0,"y":900.0}]}
 //! {"sensor":"north-mole-camera","seq":1,"time":1764600001.0,"detections":[]}
+//! {"sensor":"north-mole-camera","seq":2,"time":1764600001.0,"detections":[{"x":12.0,"y":901.0}]}
 //! "#;
 //! let (mut frames, mut report) = (Vec::new(), Vec::new());
 //! let summary = run_batch(&site, recording.as_bytes(), &mut frames, &mut report).unwrap();
-//! assert_eq!((summary.frames, summary.skipped), (1, 1));
+//! assert_eq!((summary.frames, summary.skipped), (2, 1));
 //! assert!(String::from_utf8(report).unwrap().starts_with("line 2: batch seq 1"));
-//! let frame: serde_json::Value = serde_json::from_slice(&frames).unwrap();
-//! assert_eq!(frame["tracks"][0]["status"], "tentative");
+//! // A detection no track explains starts a candidate; its second detection makes it a track.
+//! let last: serde_json::Value = serde_json::from_slice(frames.split(|b| *b == b'\n').nth(1).unwrap()).unwrap();
+//! assert_eq!(last["tracks"][0]["id"], 1);
 //! ```
 //!
 //! The one design choice to know: **the tracker is owned by one dedicated OS thread**, fed
@@ -37,10 +42,16 @@
 
 pub mod config;
 pub mod demo;
+pub mod echo;
 pub mod error;
 pub mod http;
 pub mod metrics;
+pub mod page;
 pub mod pipeline;
+pub mod record;
+pub mod replay;
+pub mod scenario;
+pub mod score;
 pub mod server;
 pub mod wire;
 

@@ -1,4 +1,5 @@
-//! The `plotweave` command line: `demo`, `serve`, `batch`, `check`.
+//! The `plotweave` command line: `demo`, `serve`, `batch`, `check`, `replay`, `simulate`,
+//! `score`.
 //!
 //! Thin by design: parse arguments, load the site, build, run, and map errors to exit codes
 //! (0 success, 2 configuration problems, 1 anything else). The work is in the `plotweave`
@@ -76,6 +77,62 @@ enum Command {
         #[arg(long)]
         config: PathBuf,
     },
+    /// Send a recording to a live service's ingest endpoint (e.g. staging), keeping its order.
+    Replay {
+        /// The recording (JSON Lines of detection batches).
+        input: PathBuf,
+        /// Ingest URL of the service, ws://HOST:PORT/v1/ingest.
+        #[arg(long)]
+        to: String,
+        /// A sensor's ingest token, SENSOR=TOKEN (repeatable); otherwise PLOTWEAVE_TOKEN_<ID>.
+        #[arg(long = "token", value_name = "SENSOR=TOKEN")]
+        tokens: Vec<String>,
+        /// Pace: recorded spacing divided by this factor, or `max` (as fast as acks allow).
+        #[arg(long, default_value = "1")]
+        speed: plotweave::replay::Speed,
+        /// Re-stamp batch times so that the first selected batch is now.
+        #[arg(long)]
+        shift_to_now: bool,
+        /// Only this sensor's batches (repeatable).
+        #[arg(long = "sensor", value_name = "ID")]
+        sensors: Vec<String>,
+        /// Only batches with time >= this (UNIX seconds).
+        #[arg(long)]
+        from: Option<f64>,
+        /// Only batches with time < this (UNIX seconds).
+        #[arg(long)]
+        until: Option<f64>,
+    },
+    /// Simulate a scenario (TOML) into a recording and its truth.
+    Simulate {
+        /// Scenario file (TOML; see docs/operations.md).
+        #[arg(long)]
+        scenario: PathBuf,
+        /// Where the recording goes (JSON Lines of detection batches).
+        #[arg(long)]
+        output: PathBuf,
+        /// Where the truth goes (one JSON line per scan).
+        #[arg(long)]
+        truth: PathBuf,
+    },
+    /// Score track frames against a simulation's truth (GOSPA, id switches, track breaks).
+    Score {
+        /// Truth file written by `simulate`.
+        #[arg(long)]
+        truth: PathBuf,
+        /// Frames written by `batch` from that simulation's recording.
+        #[arg(long)]
+        frames: PathBuf,
+        /// Print the score as JSON (with every frame) instead of a table.
+        #[arg(long)]
+        json: bool,
+        /// Draw tracks against truth and GOSPA over time into this SVG file.
+        #[arg(long)]
+        plot: Option<PathBuf>,
+        /// GOSPA cut-off c, metres.
+        #[arg(long, default_value_t = plotweave::score::DEFAULT_CUTOFF)]
+        cutoff: f64,
+    },
 }
 
 fn main() -> ExitCode {
@@ -120,6 +177,59 @@ fn run(command: Command) -> anyhow::Result<()> {
             }
             serve(site, allow_open, false)
         }
+        Command::Replay {
+            input,
+            to,
+            tokens,
+            speed,
+            shift_to_now,
+            sensors,
+            from,
+            until,
+        } => {
+            let mut map = std::collections::BTreeMap::new();
+            for t in tokens {
+                let (id, token) = t.split_once('=').ok_or_else(|| {
+                    anyhow::anyhow!("--token must be SENSOR=TOKEN, got one without '='")
+                })?;
+                map.insert(id.to_string(), token.to_string());
+            }
+            let opts = plotweave::replay::ReplayOptions {
+                input,
+                to,
+                tokens: map,
+                speed,
+                shift_to_now,
+                sensors,
+                from,
+                until,
+                progress: std::io::IsTerminal::is_terminal(&std::io::stderr()),
+            };
+            replay(&opts)
+        }
+        Command::Simulate {
+            scenario,
+            output,
+            truth,
+        } => simulate(&scenario, &output, &truth),
+        Command::Score {
+            truth,
+            frames,
+            json,
+            plot,
+            cutoff,
+        } => {
+            let (s, paths) = plotweave::score::score(&truth, &frames, cutoff)?;
+            if json {
+                println!("{}", serde_json::to_string_pretty(&s)?);
+            } else {
+                print!("{}", plotweave::score::table(&s));
+            }
+            if let Some(p) = plot {
+                plotweave::score::plot(&p, &s, &paths)?;
+            }
+            Ok(())
+        }
         Command::Demo { listen, allow_open } => {
             let mut site = Site::demo(|k| std::env::var(k).ok())?;
             site.server.listen = listen;
@@ -150,6 +260,54 @@ fn batch(config: &Path, input: &Path, output: &Path) -> anyhow::Result<()> {
         "{} lines: {} batches used, {} skipped; {} frames written",
         summary.lines, summary.batches, summary.skipped, summary.frames
     )?;
+    Ok(())
+}
+
+fn replay(opts: &plotweave::replay::ReplayOptions) -> anyhow::Result<()> {
+    let runtime = tokio::runtime::Runtime::new().context("cannot start the async runtime")?;
+    let stderr = std::io::stderr();
+    let s = runtime.block_on(plotweave::replay::replay(opts, &mut stderr.lock()))?;
+    println!(
+        "replayed {} of {} lines to {} over {} connections in {:.2} s: {} acknowledged, {} rejected, {} re-sent after rate_limited, {} lines skipped",
+        s.selected,
+        s.lines,
+        opts.to,
+        s.connections,
+        s.seconds,
+        s.acked,
+        s.rejected,
+        s.retried,
+        s.skipped
+    );
+    if s.rejected > 0 {
+        anyhow::bail!(
+            "{} of {} batches were rejected (listed above)",
+            s.rejected,
+            s.selected
+        );
+    }
+    Ok(())
+}
+
+fn simulate(scenario: &Path, output: &Path, truth: &Path) -> anyhow::Result<()> {
+    let text = std::fs::read_to_string(scenario)
+        .with_context(|| format!("cannot read the scenario {}", scenario.display()))?;
+    let file = plotweave::scenario::parse(&text, &scenario.display().to_string())?;
+    let create = |p: &Path| {
+        std::fs::File::create(p)
+            .map(|f| std::io::BufWriter::with_capacity(1 << 16, f))
+            .with_context(|| format!("cannot create {}", p.display()))
+    };
+    let (mut rec, mut tru) = (create(output)?, create(truth)?);
+    let s = plotweave::scenario::simulate(&file, &mut rec, &mut tru)?;
+    eprintln!(
+        "scenario {:?}: {} scans, {} detections written to {}; truth in {}",
+        file.name,
+        s.scans,
+        s.detections,
+        output.display(),
+        truth.display()
+    );
     Ok(())
 }
 

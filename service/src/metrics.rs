@@ -47,7 +47,7 @@ pub struct StatusLabels {
 /// Labels `{endpoint}` of the open-connection gauge.
 #[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
 pub struct EndpointLabels {
-    /// `ingest` or `frames`.
+    /// `ingest`, `frames` or `detections`.
     pub endpoint: String,
 }
 
@@ -272,7 +272,7 @@ impl Metrics {
                 status: status.into(),
             });
         }
-        for endpoint in ["ingest", "frames"] {
+        for endpoint in ["ingest", "frames", "detections"] {
             let _ = m.connections.get_or_create(&EndpointLabels {
                 endpoint: endpoint.into(),
             });

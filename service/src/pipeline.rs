@@ -419,6 +419,8 @@ pub struct Hub {
     health: Mutex<Vec<HealthSnapshot>>,
     sensors: Mutex<Vec<SensorConfig>>,
     done: watch::Sender<bool>,
+    /// The detection echo of accepted scans (see [`crate::echo`]); fed only while listened to.
+    echo: broadcast::Sender<Utf8Bytes>,
 }
 
 impl Hub {
@@ -437,7 +439,25 @@ impl Hub {
             ),
             sensors: Mutex::new(engine.sensors().to_vec()),
             done,
+            echo: broadcast::channel(crate::echo::DETECTION_ECHO_BUFFER).0,
         })
+    }
+
+    /// A new detection echo subscription (scans taken by the engine from now on).
+    pub fn subscribe_detections(&self) -> broadcast::Receiver<Utf8Bytes> {
+        self.echo.subscribe()
+    }
+
+    /// Publish the detection echo of `scan`; does nothing (no conversion, no allocation) while
+    /// nobody listens.
+    pub fn echo(&self, scan: &Scan, sensors: &[SensorConfig]) {
+        if self.echo.receiver_count() == 0 {
+            return;
+        }
+        let mut text = String::with_capacity(64 + 40 * scan.detections.len());
+        crate::echo::write_echo(&mut text, scan, sensors);
+        // An error only means that the last listener left meanwhile.
+        let _ = self.echo.send(Utf8Bytes::from(text));
     }
 
     /// A new frame subscription (frames published from now on).
@@ -549,6 +569,7 @@ pub fn spawn_engine(
                 match input {
                     Input::Scan { scan, received } => {
                         let (sensor, seq) = (scan.sensor, scan.tag);
+                        hub.echo(&scan, engine.sensors());
                         if let Err(e) = engine.submit(scan, Some(received), &mut publish) {
                             // Admission mirrors the tracker's rules, so this means the two
                             // disagree: count it and say so; the batch was already acked.
@@ -622,31 +643,25 @@ pub fn run_batch(
         error: None,
         frames: 0,
     };
-    let mut line = Vec::with_capacity(4096);
-    loop {
-        line.clear();
-        let n = input
-            .read_until(b'\n', &mut line)
-            .map_err(|e| Error::io("cannot read the recording", e))?;
-        if n == 0 {
-            break;
-        }
+    // The one reader of recordings (shared with `replay`): it reports torn last lines too.
+    let mut reader = crate::record::RecordingReader::new(&mut input);
+    while let Some(line) = reader.next_line()? {
         summary.lines += 1;
-        let number = summary.lines;
+        let (number, text) = match line {
+            crate::record::Line::Batch { number, text } => (number, Some(text)),
+            crate::record::Line::Bad { number, message } => {
+                summary.skipped += 1;
+                writeln!(report, "line {number}: {message}; skipped")
+                    .map_err(|e| Error::io("cannot write the report", e))?;
+                (number, None)
+            }
+        };
+        let Some(text) = text else { continue };
         let mut bad = |msg: &str| -> Result<(), Error> {
             summary.skipped += 1;
             writeln!(report, "line {number}: {msg}; skipped")
                 .map_err(|e| Error::io("cannot write the report", e))
         };
-        let Ok(text) = std::str::from_utf8(&line) else {
-            bad("not valid UTF-8")?;
-            continue;
-        };
-        let text = text.trim_end_matches(['\n', '\r']);
-        if text.trim().is_empty() {
-            bad("empty line")?;
-            continue;
-        }
         let scan = match wire::decode_batch(text, &site.sensors, limits) {
             Ok(s) => s,
             Err(r) => {

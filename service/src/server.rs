@@ -57,12 +57,20 @@ pub(crate) struct Shared {
     next_connection: AtomicU64,
     pub(crate) limits: DecodeLimits,
     engine_thread: Mutex<Option<std::thread::JoinHandle<()>>>,
+    /// Where accepted batches are recorded (`[server.recording]`), if anywhere.
+    pub(crate) recorder: Option<crate::record::Recorder>,
 }
 
 impl AppState {
     /// Build the engine of `site` and start its thread.
     pub fn new(site: Site) -> Result<Self, Error> {
         let ids = site.sensor_ids();
+        let recorder = site
+            .server
+            .recording
+            .clone()
+            .map(crate::record::Recorder::start)
+            .transpose()?;
         let metrics = Arc::new(Metrics::new(&ids));
         let engine = Engine::new(&site, metrics.clone())?;
         let hub = Hub::new(&engine, site.server.limits.frame_buffer);
@@ -85,6 +93,7 @@ impl AppState {
             open_connections: AtomicUsize::new(0),
             next_connection: AtomicU64::new(1),
             engine_thread: Mutex::new(Some(thread)),
+            recorder,
         })))
     }
 
@@ -134,6 +143,19 @@ impl AppState {
     /// Admit `scan` and queue it for the engine (waiting for room when the queue is full).
     /// `Ok` means the batch is accepted and may be acknowledged.
     pub async fn submit(&self, scan: Scan, received: Instant) -> Result<(), Rejection> {
+        self.submit_recorded(scan, received, None).await
+    }
+
+    /// [`AppState::submit`], and where recording is on, record `text` (the batch as received)
+    /// and return only once it is written per `server.recording.sync`. The line is queued in
+    /// admission order, the order the engine sees. If writing fails the batch has been used
+    /// but is refused `internal` (not acknowledged), so the sensor knows it is not on record.
+    pub async fn submit_recorded(
+        &self,
+        scan: Scan,
+        received: Instant,
+        text: Option<&str>,
+    ) -> Result<(), Rejection> {
         let shutting_down = |seq: u64| {
             Rejection::new(
                 Code::ShuttingDown,
@@ -145,14 +167,34 @@ impl AppState {
         let Some(tx) = self.sender() else {
             return Err(shutting_down(seq));
         };
-        let gap = {
+        let (gap, written) = {
             let mut admission = self.0.admission.lock().await;
             let admitted = admission.admit(&scan, Some(received))?;
             tx.send(Input::Scan { scan, received })
                 .await
                 .map_err(|_| shutting_down(seq))?;
-            admitted.gap
+            // Queued under the same lock as the engine input: file order is engine order.
+            let written = match (&self.0.recorder, text) {
+                (Some(r), Some(t)) => Some(r.append(t, crate::record::unix_now())),
+                _ => None,
+            };
+            (admitted.gap, written)
         };
+        if let Some(w) = written {
+            let failed = match w.await {
+                Ok(Ok(())) => None,
+                Ok(Err(msg)) => Some(msg),
+                Err(_) => Some("the recorder has stopped".to_string()),
+            };
+            if let Some(msg) = failed {
+                return Err(Rejection::new(
+                    Code::Internal,
+                    Some(seq),
+                    format!("batch seq {seq}: used but not recorded ({msg}); not acknowledged"),
+                )
+                .for_sensor(sensor));
+            }
+        }
         let m = &self.0.metrics;
         let l = metrics::sensor(&self.0.ids[sensor]);
         m.batches_acked.get_or_create(&l).inc();
@@ -415,7 +457,7 @@ async fn handle_batch(state: &AppState, principal: Principal, text: &str) -> Str
             let span = tracing::debug_span!("batch", sensor = %state.0.ids[scan.sensor], seq);
             async {
                 principal.check(state, scan.sensor, seq)?;
-                state.submit(scan, received).await?;
+                state.submit_recorded(scan, received, Some(text)).await?;
                 tracing::debug!("acknowledged");
                 Ok(seq)
             }
@@ -602,6 +644,9 @@ pub async fn run(
                 "shutdown timed out; exiting anyway"
             );
         }
+    }
+    if let Some(r) = &state.0.recorder {
+        r.shutdown();
     }
     Ok(())
 }

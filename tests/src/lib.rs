@@ -162,6 +162,11 @@ impl Server {
         })
     }
 
+    /// The process id, while it runs.
+    pub fn pid(&self) -> Option<u32> {
+        self.child.as_ref().map(|c| c.id())
+    }
+
     /// `ws://ADDR{path}`.
     pub fn ws_url(&self, path: &str) -> String {
         format!("ws://{}{path}", self.addr)
@@ -181,6 +186,14 @@ impl Server {
         if !st.success() {
             bail!("kill -TERM {pid} failed");
         }
+        Ok(())
+    }
+
+    /// Kill the process with SIGKILL (no chance to flush anything) and reap it.
+    pub fn sigkill(&mut self) -> Result<()> {
+        let mut child = self.child.take().context("already stopped")?;
+        child.kill()?;
+        child.wait()?;
         Ok(())
     }
 
