@@ -60,76 +60,12 @@ fn main() {
         let s = sim.next().unwrap().scan;
         let t = std::time::Instant::now();
         let p = tracker.submit(s).unwrap();
-        if k % 10 == 0 {
-            let pic = &p[0];
-            let conf: Vec<&TrackView> = pic
-                .tracks
-                .iter()
-                .filter(|t| t.status == TrackStatus::Confirmed)
-                .collect();
-            let newt: Vec<&TrackView> = pic
-                .tracks
-                .iter()
-                .filter(|t| t.status == TrackStatus::Tentative)
-                .collect();
-            let near = newt
-                .iter()
-                .filter(|t| {
-                    conf.iter()
-                        .any(|c| (c.state[0] - t.state[0]).hypot(c.state[1] - t.state[1]) < 60.0)
-                })
-                .count();
-            let ages: Vec<f64> = newt
-                .iter()
-                .filter(|t| {
-                    conf.iter()
-                        .any(|c| (c.state[0] - t.state[0]).hypot(c.state[1] - t.state[1]) < 60.0)
-                })
-                .map(|t| pic.time - t.last_update)
-                .take(5)
-                .collect();
-            println!(
-                "k={k} conf={} tent={} near={near} births={} since-update {:?}",
-                conf.len(),
-                newt.len(),
-                pic.stats.births,
-                ages
-            );
-        }
         if k >= 30 {
             total += t.elapsed();
         }
         last = p.into_iter().last();
     }
     let p = last.unwrap();
-    let conf: Vec<&TrackView> = p
-        .tracks
-        .iter()
-        .filter(|t| t.status == TrackStatus::Confirmed)
-        .collect();
-    let tent: Vec<&TrackView> = p
-        .tracks
-        .iter()
-        .filter(|t| t.status == TrackStatus::Tentative)
-        .collect();
-    let near = tent
-        .iter()
-        .filter(|t| {
-            conf.iter()
-                .any(|c| (c.state[0] - t.state[0]).hypot(c.state[1] - t.state[1]) < 60.0)
-        })
-        .count();
-    let mut ex: Vec<f64> = tent.iter().map(|t| t.existence).collect();
-    ex.sort_by(f64::total_cmp);
-    if !ex.is_empty() {
-        println!(
-            "tentative {}: {} within 60 m of a confirmed track; existence median {:.2e}, max {:.2e}",
-            tent.len(),
-            near,
-            ex[ex.len() / 2],
-            ex[ex.len() - 1]
-        );
-    }
     println!(
         "n={n}: {:.3} ms/scan over {} scans; tracks {} (confirmed {}), clusters {}, max cluster {}, hypotheses {}, truncated {}",
         total.as_secs_f64() * 1e3 / (scans.saturating_sub(30)) as f64,

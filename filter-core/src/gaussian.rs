@@ -65,16 +65,19 @@ impl<const N: usize> Gaussian<N> {
     }
 
     /// Internal constructor for results of updates that keep the invariants by construction.
+    #[inline]
     pub(crate) fn from_parts(mean: SVector<f64, N>, cov: SMatrix<f64, N, N>) -> Self {
         Self { mean, cov }
     }
 
     /// The mean.
+    #[inline]
     pub fn mean(&self) -> &SVector<f64, N> {
         &self.mean
     }
 
     /// The covariance (symmetric, positive semi-definite).
+    #[inline]
     pub fn cov(&self) -> &SMatrix<f64, N, N> {
         &self.cov
     }
@@ -87,15 +90,17 @@ impl<const N: usize> Gaussian<N> {
     /// Prepare a measurement update of this (predicted) state with `model`: linearise at the
     /// mean (EKF) and compute the innovation covariance S = H P Hᵀ + R, its inverse and the
     /// gain K = P Hᵀ S⁻¹.
+    #[inline]
     pub fn prepare<const M: usize, Mm: MeasurementModel<N, M>>(
         &self,
         model: &Mm,
     ) -> Result<PreparedUpdate<N, M>> {
         let zhat = model.predict(&self.mean);
         let h = model.jacobian(&self.mean);
-        let pht = self.cov * h.transpose();
-        let s = h * pht + model.noise();
-        PreparedUpdate::from_moments(zhat, s, pht, Some(h), model.noise())
+        let r = model.noise();
+        let pht = mm(&self.cov, &h.transpose());
+        let s = mm(&h, &pht) + r;
+        PreparedUpdate::from_moments(zhat, s, pht, Some(h), r)
     }
 }
 
@@ -117,12 +122,13 @@ pub struct PreparedUpdate<const N: usize, const M: usize> {
     pub s: SMatrix<f64, M, M>,
     /// S⁻¹.
     pub s_inv: SMatrix<f64, M, M>,
-    /// ln det S.
-    pub ln_det_s: f64,
     /// Kalman gain K.
     pub gain: SMatrix<f64, N, M>,
-    /// Cross covariance P Hᵀ (or Pxz for the unscented form).
-    pub cross: SMatrix<f64, N, M>,
+    /// det S, when S is small enough for the closed form (ln is taken only when a likelihood
+    /// is asked for: the plain Kalman update never needs it).
+    det_s: f64,
+    /// ln det S, computed on first use (NaN until then).
+    ln_det_s: std::cell::Cell<f64>,
     h: Option<SMatrix<f64, M, N>>,
     r: SMatrix<f64, M, M>,
 }
@@ -130,6 +136,7 @@ pub struct PreparedUpdate<const N: usize, const M: usize> {
 impl<const N: usize, const M: usize> PreparedUpdate<N, M> {
     /// Build from predicted measurement moments: ẑ, S, and the cross covariance Pxz
     /// (= P Hᵀ in the linearised case). `h` is the Jacobian when known (enables Joseph form).
+    #[inline]
     pub fn from_moments(
         zhat: SVector<f64, M>,
         s: SMatrix<f64, M, M>,
@@ -144,8 +151,9 @@ impl<const N: usize, const M: usize> PreparedUpdate<N, M> {
                 "innovation covariance is not positive definite (check the sensor noise settings)",
             )
         };
-        let (s_inv, ln_det_s) = if let Some(small) = small_spd_inverse(&s) {
-            small.ok_or_else(singular)?
+        let (s_inv, det_s, ln_det) = if let Some(small) = small_spd_inverse(&s) {
+            let (inv, det) = small.ok_or_else(singular)?;
+            (inv, det, f64::NAN)
         } else {
             let chol = s.cholesky().ok_or_else(singular)?;
             let l = chol.l_dirty();
@@ -153,16 +161,16 @@ impl<const N: usize, const M: usize> PreparedUpdate<N, M> {
             for i in 0..M {
                 ln_det += 2.0 * l[(i, i)].ln();
             }
-            (chol.inverse(), ln_det)
+            (chol.inverse(), f64::NAN, ln_det)
         };
-        let gain = cross * s_inv;
+        let gain = mm(&cross, &s_inv);
         Ok(Self {
             zhat,
             s,
             s_inv,
-            ln_det_s,
             gain,
-            cross,
+            det_s,
+            ln_det_s: std::cell::Cell::new(ln_det),
             h,
             r,
         })
@@ -174,32 +182,67 @@ impl<const N: usize, const M: usize> PreparedUpdate<N, M> {
         (nu.transpose() * self.s_inv * nu)[(0, 0)]
     }
 
+    /// ln det S.
+    #[inline]
+    pub fn ln_det_s(&self) -> f64 {
+        let v = self.ln_det_s.get();
+        if v.is_nan() {
+            let l = self.det_s.ln();
+            self.ln_det_s.set(l);
+            l
+        } else {
+            v
+        }
+    }
+
     /// ln N(ν; 0, S) from the squared distance.
     #[inline]
     pub fn ln_likelihood_from_d2(&self, d2: f64) -> f64 {
-        stats::normal_ln_from_parts(d2, self.ln_det_s, M)
+        stats::normal_ln_from_parts(d2, self.ln_det_s(), M)
     }
 
     /// Covariance after an update with a known measurement: Joseph form when the Jacobian is
     /// known, otherwise P − K S Kᵀ symmetrised.
+    #[inline]
     pub fn posterior_cov(&self, prior: &SMatrix<f64, N, N>) -> SMatrix<f64, N, N> {
         let p = match &self.h {
             Some(h) => {
-                let i_kh = SMatrix::<f64, N, N>::identity() - self.gain * h;
-                i_kh * prior * i_kh.transpose() + self.gain * self.r * self.gain.transpose()
+                let i_kh = SMatrix::<f64, N, N>::identity() - mm(&self.gain, h);
+                let kr = mm(&self.gain, &self.r);
+                mm(&mm(&i_kh, prior), &i_kh.transpose()) + mm(&kr, &self.gain.transpose())
             }
-            None => prior - self.gain * self.s * self.gain.transpose(),
+            None => prior - mm(&mm(&self.gain, &self.s), &self.gain.transpose()),
         };
         (p + p.transpose()) * 0.5
     }
 
     /// The updated Gaussian for innovation ν (x⁺ = x⁻ + K ν, Joseph-form covariance).
+    #[inline]
     pub fn apply(&self, prior: &Gaussian<N>, nu: &SVector<f64, M>) -> Gaussian<N> {
         Gaussian::from_parts(prior.mean + self.gain * nu, self.posterior_cov(&prior.cov))
     }
 }
 
-/// Closed-form inverse and ln det of a symmetric matrix of size 1, 2 or 3 (`None` for other
+/// Matrix product by plain loops over the static sizes. LLVM unrolls and vectorises these
+/// completely; nalgebra's generic product is not always inlined at these tiny sizes.
+#[inline(always)]
+pub(crate) fn mm<const A: usize, const B: usize, const C: usize>(
+    x: &SMatrix<f64, A, B>,
+    y: &SMatrix<f64, B, C>,
+) -> SMatrix<f64, A, C> {
+    let mut out = SMatrix::<f64, A, C>::zeros();
+    for c in 0..C {
+        for k in 0..B {
+            let ykc = y[(k, c)];
+            for r in 0..A {
+                out[(r, c)] += x[(r, k)] * ykc;
+            }
+        }
+    }
+    out
+}
+
+/// Closed-form inverse and det of a symmetric matrix of size 1, 2 or 3 (`None` for other
 /// sizes); the inner `None` when it is not positive definite (Sylvester's criterion: every
 /// leading principal minor positive).
 fn small_spd_inverse<const M: usize>(
@@ -252,7 +295,7 @@ fn small_spd_inverse<const M: usize>(
     if !(det > 0.0 && det.is_finite()) {
         return Some(None);
     }
-    Some(Some((inv, det.ln())))
+    Some(Some((inv, det)))
 }
 
 #[cfg(test)]
@@ -266,11 +309,11 @@ mod tests {
         let s2 = Matrix2::new(4.0, 1.0, 1.0, 3.0);
         let (i2, l2) = small_spd_inverse(&s2).unwrap().unwrap();
         assert!((i2 - s2.try_inverse().unwrap()).abs().max() < 1e-15);
-        assert!((l2 - 11f64.ln()).abs() < 1e-15);
+        assert!((l2 - 11.0).abs() < 1e-12);
         let s3 = Matrix3::new(9.0, 2.0, 0.0, 2.0, 4.0, 1.0, 0.0, 1.0, 1.0);
         let (i3, l3) = small_spd_inverse(&s3).unwrap().unwrap();
         assert!((i3 - s3.try_inverse().unwrap()).abs().max() < 1e-15);
-        assert!((l3 - s3.determinant().ln()).abs() < 1e-14);
+        assert!((l3 - s3.determinant()).abs() < 1e-12);
         assert!(
             small_spd_inverse(&Matrix2::new(1.0, 2.0, 2.0, 1.0))
                 .unwrap()

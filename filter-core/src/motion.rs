@@ -55,6 +55,7 @@ pub trait MotionModel<const N: usize> {
 }
 
 /// Validate a time step: finite and not negative.
+#[inline]
 pub fn check_dt(dt: f64) -> Result<()> {
     if !dt.is_finite() {
         return Err(Error::input(format!("time step must be finite, got {dt}")));
@@ -132,6 +133,7 @@ impl ConstantVelocity {
 }
 
 impl MotionModel<4> for ConstantVelocity {
+    #[inline]
     fn transition(&self, x: &CvState, dt: f64) -> CvState {
         CvState::new(x[0] + dt * x[2], x[1] + dt * x[3], x[2], x[3])
     }
@@ -156,6 +158,7 @@ impl MotionModel<4> for ConstantVelocity {
     }
 
     /// Specialised predict: the block structure of F makes F P Fᵀ a handful of additions.
+    #[inline]
     fn predict(&self, g: &Gaussian<4>, dt: f64) -> Result<Gaussian<4>> {
         check_dt(dt)?;
         if dt == 0.0 {

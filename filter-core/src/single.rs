@@ -12,7 +12,7 @@ use nalgebra::{SMatrix, SVector};
 use crate::clutter::association_weights;
 use crate::error::{Error, Result, check_positive, check_prob};
 use crate::gating::Gate;
-use crate::gaussian::{Gaussian, PreparedUpdate};
+use crate::gaussian::{Gaussian, PreparedUpdate, mm};
 use crate::measurement::MeasurementModel;
 use crate::motion::MotionModel;
 
@@ -168,6 +168,7 @@ pub struct Pda<const N: usize, Mo, Me> {
 
 /// The PDA combination of a prepared update with gated innovations and their weights (β₀
 /// first). Shared by the single-object PDA filter and the multi-object JPDA update.
+#[inline]
 pub fn pda_combine<const N: usize, const M: usize>(
     prior: &Gaussian<N>,
     prep: &PreparedUpdate<N, M>,
@@ -175,17 +176,25 @@ pub fn pda_combine<const N: usize, const M: usize>(
     beta: &[f64],
 ) -> Gaussian<N> {
     debug_assert_eq!(innovations.len() + 1, beta.len());
+    let b0 = beta[0];
+    if innovations.is_empty() || b0 >= 1.0 {
+        // Nothing (or nothing with weight) to combine: the prediction stands.
+        return prior.clone();
+    }
+    let pc = prep.posterior_cov(prior.cov());
     let mut nu_bar = SVector::<f64, M>::zeros();
     let mut spread = SMatrix::<f64, M, M>::zeros();
     for (nu, b) in innovations.iter().zip(&beta[1..]) {
         nu_bar += nu * *b;
-        spread += nu * nu.transpose() * *b;
+        spread += mm(&(nu * *b), &nu.transpose());
     }
-    spread -= nu_bar * nu_bar.transpose();
-    let b0 = beta[0];
-    let pc = prep.posterior_cov(prior.cov());
-    let p = prior.cov() * b0 + pc * (1.0 - b0) + prep.gain * spread * prep.gain.transpose();
-    Gaussian::from_parts(prior.mean() + prep.gain * nu_bar, (p + p.transpose()) * 0.5)
+    spread -= mm(&nu_bar, &nu_bar.transpose());
+    let ks = mm(&prep.gain, &spread);
+    let p = prior.cov() * b0 + pc * (1.0 - b0) + mm(&ks, &prep.gain.transpose());
+    Gaussian::from_parts(
+        prior.mean() + mm(&prep.gain, &nu_bar),
+        (p + p.transpose()) * 0.5,
+    )
 }
 
 impl<const N: usize, Mo: MotionModel<N>, Me> Pda<N, Mo, Me> {

@@ -932,13 +932,15 @@ impl Tracker {
     fn apply(&mut self, scan: Scan) -> Picture {
         let t = scan.time;
         let ps = self.config.survival_probability;
+        // Every track is at the picture time, so one step and one survival factor serve all.
+        let survival = ps.powf((t - self.time.unwrap_or(t)).max(0.0));
         for tr in &mut self.tracks {
             let dt = (t - self.time.unwrap_or(t)).max(0.0);
             // dt ≥ 0 and finite by construction, so predict cannot fail.
             if let Ok(p) = self.motion.predict(&tr.state, dt) {
                 tr.state = p;
             }
-            tr.existence *= ps.powf(dt);
+            tr.existence *= survival;
         }
         self.time = Some(t);
         let s = scan.sensor;
@@ -1160,6 +1162,7 @@ impl Tracker {
         let mut local: Vec<u32> = vec![u32::MAX; zs.len()];
         let mut dets: Vec<u32> = Vec::new();
         let mut cands: Vec<Candidates> = Vec::new();
+        let mut lns: Vec<f64> = Vec::new();
         for group in by_root.chunk_by(|a, b| a.0 == b.0) {
             members.clear();
             members.extend(group.iter().map(|g| g.1));
@@ -1182,7 +1185,8 @@ impl Tracker {
                 let ln_miss = (1.0 - r * pd * pg).ln();
                 let range =
                     first_pair[ti as usize]..first_pair[ti as usize] + pair_count[ti as usize];
-                let lns: Vec<f64> = pairs[range.clone()].iter().map(|p| r.ln() + p.3).collect();
+                lns.clear();
+                lns.extend(pairs[range.clone()].iter().map(|p| r.ln() + p.3));
                 let mx = lns.iter().copied().fold(ln_miss, f64::max);
                 let mut c = Candidates {
                     missed: (ln_miss - mx).exp(),
@@ -1224,6 +1228,8 @@ impl Tracker {
         let (nis_lo, nis_hi) = rt.nis_interval;
         let management = self.config.management;
         let gnn = matches!(self.method, Method::Gnn);
+        let mut nus: Vec<SVector<f64, M>> = Vec::new();
+        let mut ws: Vec<f64> = Vec::new();
         for ti in 0..n_tracks {
             let Some((prep, pd, _)) = prepared[ti].as_ref() else {
                 continue;
@@ -1260,8 +1266,9 @@ impl Tracker {
             } else {
                 (1.0, 0.0)
             };
-            let nus: Vec<SVector<f64, M>> = pairs[range.clone()].iter().map(|p| p.2).collect();
-            let mut ws = Vec::with_capacity(nus.len() + 1);
+            nus.clear();
+            nus.extend(pairs[range.clone()].iter().map(|p| p.2));
+            ws.clear();
             ws.push(w0);
             ws.extend(beta[range.clone()].iter().map(|b| b * scale));
             let wsum: f64 = ws.iter().sum();
@@ -1385,9 +1392,17 @@ impl Tracker {
             cov.fixed_view_mut::<2, 2>(0, 0).copy_from(&pos_cov);
             cov[(2, 2)] = vel_var;
             cov[(3, 3)] = vel_var;
-            let Ok(state) = Gaussian::new(Vector4::new(mean[0], mean[1], 0.0, 0.0), cov) else {
+            // The position block is a measurement covariance (positive definite by the sensor's
+            // validated noise), the velocity block diagonal: no general PSD check is needed.
+            let det = pos_cov[(0, 0)] * pos_cov[(1, 1)] - pos_cov[(0, 1)] * pos_cov[(1, 0)];
+            if !(mean.iter().all(|v| v.is_finite())
+                && pos_cov[(0, 0)] > 0.0
+                && det > 0.0
+                && det.is_finite())
+            {
                 continue;
-            };
+            }
+            let state = Gaussian::from_parts(Vector4::new(mean[0], mean[1], 0.0, 0.0), cov);
             self.tracks.push(Track {
                 id: 0,
                 state,
