@@ -270,6 +270,12 @@ async fn main() -> Result<()> {
     let rate = full.batches as f64 / full.seconds;
     let half = phase(&addr, &args, Some(rate / 2.0), 1_000_000).await?;
     let rss = server.pid().and_then(peak_rss_mib);
+    // The server's own view: its ingest-to-frame latency histogram over both phases.
+    if let Ok(r) = plotweave_tests::http(&addr, "GET", "/metrics", None, None).await {
+        for l in r.body.lines().filter(|l| l.starts_with("plotweave_ingest_to_frame_latency_seconds")) {
+            println!("server {l}");
+        }
+    }
     let det_rate = full.detections as f64 / full.seconds;
     println!(
         "throughput: {:.0} detections/s ({:.0} batches/s of {} detections, {} sensors, window {}), frames per subscriber {:?}, skipped {:?}",
