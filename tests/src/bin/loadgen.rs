@@ -272,7 +272,11 @@ async fn main() -> Result<()> {
     let rss = server.pid().and_then(peak_rss_mib);
     // The server's own view: its ingest-to-frame latency histogram over both phases.
     if let Ok(r) = plotweave_tests::http(&addr, "GET", "/metrics", None, None).await {
-        for l in r.body.lines().filter(|l| l.starts_with("plotweave_ingest_to_frame_latency_seconds")) {
+        for l in r
+            .body
+            .lines()
+            .filter(|l| l.starts_with("plotweave_ingest_to_frame_latency_seconds"))
+        {
             println!("server {l}");
         }
     }
