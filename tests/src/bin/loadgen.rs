@@ -22,7 +22,7 @@ use anyhow::{Context, Result, bail};
 use clap::Parser;
 use futures_util::{SinkExt, StreamExt};
 use plotweave_tests::{Server, temp_dir, write_file};
-use tokio_tungstenite::connect_async;
+use tokio_tungstenite::connect_async_with_config;
 use tokio_tungstenite::tungstenite::Message;
 
 #[derive(Parser, Debug, Clone)]
@@ -130,7 +130,7 @@ async fn phase(addr: &str, args: &Args, pace: Option<f64>, seq0: u64) -> Result<
     let mut subs = Vec::new();
     for s in 0..args.subscribers {
         let url = format!("ws://{addr}/v1/frames");
-        let (mut ws, _) = connect_async(url.as_str())
+        let (mut ws, _) = connect_async_with_config(url.as_str(), None, true)
             .await
             .context("frames subscriber")?;
         let sent = sent.clone();
@@ -173,7 +173,7 @@ async fn phase(addr: &str, args: &Args, pace: Option<f64>, seq0: u64) -> Result<
     let mut senders = Vec::new();
     for k in 0..args.sensors {
         let url = format!("ws://{addr}/v1/ingest");
-        let (ws, _) = connect_async(url.as_str())
+        let (ws, _) = connect_async_with_config(url.as_str(), None, true)
             .await
             .context("ingest connection")?;
         let (mut tx, mut rx) = ws.split();
