@@ -45,6 +45,9 @@ struct Args {
     /// Seconds per phase.
     #[arg(long, default_value_t = 10.0)]
     seconds: f64,
+    /// Skip the throughput phase and pace the latency phase at this many batches per second.
+    #[arg(long)]
+    pace: Option<f64>,
     /// Real objects per sensor (the rest of each batch is clutter).
     #[arg(long, default_value_t = 20)]
     objects: usize,
@@ -266,9 +269,26 @@ async fn main() -> Result<()> {
         &["serve", "--config", cfg.to_str().unwrap_or_default()],
     )?;
     let addr = server.addr.clone();
-    let full = phase(&addr, &args, None, 1).await?;
+    let (full, half) = if let Some(p) = args.pace {
+        let half = phase(&addr, &args, Some(p), 1_000_000).await?;
+        (
+            PhaseResult {
+                batches: 0,
+                detections: 0,
+                seconds: 1.0,
+                latencies_ms: vec![],
+                frames: vec![],
+                skipped: vec![],
+            },
+            half,
+        )
+    } else {
+        let full = phase(&addr, &args, None, 1).await?;
+        let rate = full.batches as f64 / full.seconds;
+        let half = phase(&addr, &args, Some(rate / 2.0), 1_000_000).await?;
+        (full, half)
+    };
     let rate = full.batches as f64 / full.seconds;
-    let half = phase(&addr, &args, Some(rate / 2.0), 1_000_000).await?;
     let rss = server.pid().and_then(peak_rss_mib);
     // The server's own view: its ingest-to-frame latency histogram over both phases.
     if let Ok(r) = plotweave_tests::http(&addr, "GET", "/metrics", None, None).await {
