@@ -316,16 +316,10 @@ impl Problems {
         path: &str,
         value: toml::Value,
     ) -> Option<T> {
-        match serde_path_to_error::deserialize::<_, T>(value) {
+        match deserialize_section(path, value) {
             Ok(v) => Some(v),
-            Err(e) => {
-                let inner = e.path().to_string();
-                let full = if inner == "." {
-                    path.to_string()
-                } else {
-                    format!("{path}.{inner}")
-                };
-                self.add(full, e.into_inner().to_string().trim().to_string());
+            Err((full, message)) => {
+                self.add(full, message);
                 None
             }
         }
@@ -1170,6 +1164,23 @@ pub fn summary(site: &Site) -> String {
         );
     }
     s
+}
+
+/// Deserialise one TOML section as `T`. On failure, the key path of the problem (`path`
+/// extended by the path inside `value` where serde found it) and a message for the user.
+pub(crate) fn deserialize_section<T: for<'de> Deserialize<'de>>(
+    path: &str,
+    value: toml::Value,
+) -> Result<T, (String, String)> {
+    serde_path_to_error::deserialize::<_, T>(value).map_err(|e| {
+        let inner = e.path().to_string();
+        let full = if inner == "." {
+            path.to_string()
+        } else {
+            format!("{path}.{inner}")
+        };
+        (full, e.into_inner().to_string().trim().to_string())
+    })
 }
 
 #[cfg(test)]

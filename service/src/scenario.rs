@@ -317,16 +317,10 @@ fn section<T: for<'de> Deserialize<'de>>(
     path: &str,
     value: toml::Value,
 ) -> Option<T> {
-    match serde_path_to_error::deserialize::<_, T>(value) {
+    match crate::config::deserialize_section(path, value) {
         Ok(v) => Some(v),
-        Err(e) => {
-            let inner = e.path().to_string();
-            let full = if inner == "." {
-                path.to_string()
-            } else {
-                format!("{path}.{inner}")
-            };
-            add(full, e.into_inner().to_string().trim().to_string());
+        Err((full, message)) => {
+            add(full, message);
             None
         }
     }
