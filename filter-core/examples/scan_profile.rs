@@ -30,6 +30,14 @@ fn main() {
         }
         last = p.into_iter().last();
     }
+    let t0 = std::time::Instant::now();
+    for _ in 0..20 {
+        std::hint::black_box(tracker.picture());
+    }
+    println!(
+        "picture() alone: {:.3} ms",
+        t0.elapsed().as_secs_f64() * 1e3 / 20.0
+    );
     let p = last.unwrap();
     println!(
         "n={n}: {:.3} ms/scan over {} scans; tracks {} (confirmed {}), clusters {}, max cluster {}, hypotheses {}, truncated {}",

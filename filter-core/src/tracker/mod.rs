@@ -846,10 +846,20 @@ impl Tracker {
 
     /// Live tracks now, ascending by id.
     pub fn picture(&self) -> Vec<TrackView> {
-        // Ids are given at promotion, so creation order is not id order: sort (ids are unique).
-        let mut v: Vec<TrackView> = self.tracks.iter().filter(|t| t.id != 0).map(view).collect();
-        v.sort_unstable_by_key(|t| t.id);
-        v
+        // Ids are given at promotion, so creation order is not id order: sort small (id, index)
+        // keys (ids are unique), then build the views in that order.
+        let mut order: Vec<(u64, u32)> = self
+            .tracks
+            .iter()
+            .enumerate()
+            .filter(|(_, t)| t.id != 0)
+            .map(|(i, t)| (t.id, i as u32))
+            .collect();
+        order.sort_unstable();
+        order
+            .iter()
+            .map(|&(_, i)| view(&self.tracks[i as usize]))
+            .collect()
     }
 
     /// Change a sensor's P_D, clutter rate or noise; applies from the next scan.
@@ -1032,6 +1042,8 @@ impl Tracker {
         t: f64,
         stats: &mut ScanStats,
     ) {
+        // Reported tracks come first, candidates after (see the end of this function).
+        let reported_at_start = self.tracks.partition_point(|t| t.id != 0);
         let rt = &self.runtime[s];
         let gate = rt.gate;
         let pg = gate.probability();
@@ -1417,6 +1429,17 @@ impl Tracker {
                 birth_existence: r0,
                 duplicate: false,
             });
+        }
+        // Keep reported tracks in front of candidates: promoted candidates move to the end of
+        // the reported block (a swap each). Candidates are born and dropped every scan; with
+        // them at the back, removing them moves only the short candidate block, not every
+        // track (which dominated the cost of large scans).
+        let mut boundary = reported_at_start;
+        for i in reported_at_start..self.tracks.len() {
+            if self.tracks[i].id != 0 {
+                self.tracks.swap(i, boundary);
+                boundary += 1;
+            }
         }
         let rt = &mut self.runtime[s];
         rt.health.push(health);
