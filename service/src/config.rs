@@ -70,6 +70,11 @@ pub struct Limits {
     /// Frames buffered per frame subscriber (default 256). A subscriber that falls further
     /// behind skips the oldest frames and is sent `{"skipped": N}`; it never slows the engine.
     pub frame_buffer: usize,
+    /// How far ahead of the server's clock a live batch's `time` may be, seconds (default 300;
+    /// 0 turns the check off). A batch stamped further ahead would move the picture into the
+    /// future and make every later batch `late_scan`, so it is refused with `out_of_range`.
+    /// Recordings of the past (staging replays) are never affected; `batch` does not check.
+    pub max_time_ahead: f64,
 }
 
 impl Default for Limits {
@@ -81,6 +86,7 @@ impl Default for Limits {
             max_connections: 256,
             queue_depth: 64,
             frame_buffer: 256,
+            max_time_ahead: 300.0,
         }
     }
 }
@@ -282,6 +288,7 @@ struct RawLimits {
     max_connections: Option<i64>,
     queue_depth: Option<i64>,
     frame_buffer: Option<i64>,
+    max_time_ahead: Option<f64>,
 }
 
 #[derive(Debug, Deserialize, Default)]
@@ -1041,6 +1048,9 @@ fn server_config(
         }
         if let Some(v) = l.frame_buffer {
             limits.frame_buffer = p.int(&at("frame_buffer"), v, 1, 1_000_000);
+        }
+        if let Some(v) = l.max_time_ahead {
+            limits.max_time_ahead = p.non_negative(&at("max_time_ahead"), v, " s");
         }
     }
     let recording = raw.recording.and_then(|r| recording_config(p, r));

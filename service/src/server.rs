@@ -433,6 +433,35 @@ pub(crate) async fn ingest_session<S, R>(
     .await;
 }
 
+/// Refuse a live batch stamped more than `server.limits.max_time_ahead` seconds ahead of the
+/// server's clock (0 disables the check).
+fn check_time_ahead(state: &AppState, scan: &Scan) -> Result<(), Rejection> {
+    let limit = state.0.site.server.limits.max_time_ahead;
+    if limit <= 0.0 {
+        return Ok(());
+    }
+    let now = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map_or(0.0, |d| d.as_secs_f64());
+    if scan.time > now + limit {
+        return Err(Rejection::new(
+            Code::OutOfRange,
+            Some(scan.tag),
+            format!(
+                "batch seq {} from {:?}: time: {} is {:.0} s ahead of the server clock; \
+                 server.limits.max_time_ahead is {} s (check the sensor's clock)",
+                scan.tag,
+                state.0.ids[scan.sensor],
+                scan.time,
+                scan.time - now,
+                limit
+            ),
+        )
+        .for_sensor(scan.sensor));
+    }
+    Ok(())
+}
+
 /// Decode, authorise, admit and queue one batch; the reply text (`{"ack": seq}` or an error).
 async fn handle_batch(state: &AppState, principal: Principal, text: &str) -> String {
     let received = Instant::now();
@@ -457,6 +486,7 @@ async fn handle_batch(state: &AppState, principal: Principal, text: &str) -> Str
             let span = tracing::debug_span!("batch", sensor = %state.0.ids[scan.sensor], seq);
             async {
                 principal.check(state, scan.sensor, seq)?;
+                check_time_ahead(state, &scan)?;
                 state.submit_recorded(scan, received, Some(text)).await?;
                 tracing::debug!("acknowledged");
                 Ok(seq)

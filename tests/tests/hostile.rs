@@ -92,6 +92,11 @@ async fn a_corpus_of_hostile_messages_leaves_the_server_up_and_bounded() {
             &["out_of_range"],
         ),
         ("not an object", "[1,2,3]".into(), &["schema"]),
+        (
+            "time a century ahead",
+            r#"{"sensor":"quay-camera","seq":1,"time":4900000000,"detections":[]}"#.into(),
+            &["out_of_range"],
+        ),
     ];
     for (name, text, codes) in &cases {
         let a = answer(&server, Message::text(text.clone())).await;
