@@ -15,6 +15,7 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, Normal, Poisson};
 
+use crate::clutter::Region;
 use crate::error::{Error, Result, check_non_negative, check_positive};
 use crate::motion::{CoordinatedTurn, MotionModel};
 use crate::tracker::{FieldOfView, Measurement, Scan, SensorConfig, SensorKind};
@@ -183,13 +184,21 @@ pub struct Simulator {
     scenario: Scenario,
     rng: ChaCha8Rng,
     next_scan: Vec<u64>,
+    /// Each sensor's field of view, resolved once (the same test the tracker uses).
+    regions: Vec<Region>,
 }
 
 impl Simulator {
     /// A simulator for a validated scenario.
     pub fn new(scenario: &Scenario) -> Result<Self> {
         scenario.validate()?;
+        let regions = scenario
+            .sensors
+            .iter()
+            .map(|s| s.config.region())
+            .collect::<Result<_>>()?;
         Ok(Self {
+            regions,
             rng: ChaCha8Rng::seed_from_u64(scenario.seed),
             next_scan: vec![0; scenario.sensors.len()],
             scenario: scenario.clone(),
@@ -270,7 +279,9 @@ impl Iterator for Simulator {
                 continue;
             };
             truth.push((target.name.clone(), x));
-            if !in_fov(&cfg, x[0], x[1]) || self.rng.random::<f64>() >= cfg.detection_probability {
+            if !self.regions[s].contains(x[0], x[1])
+                || self.rng.random::<f64>() >= cfg.detection_probability
+            {
                 continue;
             }
             let m = match cfg.kind {
@@ -326,38 +337,6 @@ impl Iterator for Simulator {
             },
             truth,
         })
-    }
-}
-
-fn in_fov(cfg: &SensorConfig, x: f64, y: f64) -> bool {
-    match (cfg.kind, cfg.fov) {
-        (
-            SensorKind::Cartesian { .. },
-            FieldOfView::Rect {
-                x_min,
-                x_max,
-                y_min,
-                y_max,
-            },
-        ) => x >= x_min && x <= x_max && y >= y_min && y <= y_max,
-        (
-            SensorKind::Polar { x: sx, y: sy, .. },
-            FieldOfView::Sector {
-                min_range,
-                max_range,
-                bearing_start_deg,
-                bearing_extent_deg,
-            },
-        ) => {
-            let (dx, dy) = (x - sx, y - sy);
-            let r = dx.hypot(dy);
-            let b = dx.atan2(dy).to_degrees().rem_euclid(360.0);
-            r >= min_range
-                && r <= max_range
-                && (bearing_extent_deg >= 360.0
-                    || (b - bearing_start_deg).rem_euclid(360.0) <= bearing_extent_deg)
-        }
-        _ => false,
     }
 }
 

@@ -13,7 +13,6 @@ use std::time::{Duration, Instant};
 
 use anyhow::{Context, Result, anyhow, bail};
 use base64::Engine as _;
-use filter_core::tracker::{FieldOfView, SensorConfig, SensorKind};
 use futures_util::{SinkExt, StreamExt};
 use plotweave_tests::*;
 use serde_json::{Value, json};
@@ -44,40 +43,6 @@ fn chromium_or_skip(test: &str) -> Option<PathBuf> {
     None
 }
 
-/// Whether (x, y) (site frame, m) is inside `s`'s coverage: the rectangle of a cartesian
-/// sensor, or the annular sector of a polar one (bearings clockwise from north, as the wire
-/// contract defines them).
-fn covers(s: &SensorConfig, x: f64, y: f64) -> bool {
-    match (s.kind, s.fov) {
-        (
-            _,
-            FieldOfView::Rect {
-                x_min,
-                x_max,
-                y_min,
-                y_max,
-            },
-        ) => (x_min..=x_max).contains(&x) && (y_min..=y_max).contains(&y),
-        (
-            SensorKind::Polar { x: sx, y: sy, .. },
-            FieldOfView::Sector {
-                min_range,
-                max_range,
-                bearing_start_deg,
-                bearing_extent_deg,
-            },
-        ) => {
-            let (dx, dy) = (x - sx, y - sy);
-            let r = dx.hypot(dy);
-            let b = dx.atan2(dy).to_degrees().rem_euclid(360.0);
-            (min_range..=max_range).contains(&r)
-                && (bearing_extent_deg >= 360.0
-                    || (b - bearing_start_deg).rem_euclid(360.0) <= bearing_extent_deg)
-        }
-        (SensorKind::Cartesian { .. }, FieldOfView::Sector { .. }) => false,
-    }
-}
-
 /// The number of demo vessels inside some sensor's coverage during the first `window` s of
 /// the demo, from the demo scenario itself (`plotweave::demo::scenario`). Fails if a vessel
 /// enters or leaves coverage within the window (the expectation would then be ambiguous).
@@ -89,7 +54,7 @@ fn demo_vessels_in_coverage(window: f64) -> Result<usize> {
         let inside: Vec<bool> = (0..=window as usize)
             .map(|t| {
                 filter_core::sim::target_state(target, t as f64)
-                    .is_some_and(|s| site.sensors.iter().any(|c| covers(c, s[0], s[1])))
+                    .is_some_and(|s| site.sensors.iter().any(|c| c.covers(s[0], s[1])))
             })
             .collect();
         if inside.iter().any(|&b| b != inside[0]) {

@@ -296,8 +296,14 @@ impl SensorConfig {
         r.map_err(|e| Error::new(e.kind(), format!("sensor {}: {}", self.id, e.message())))
     }
 
+    /// Whether the site-frame point (x, y) (m) is inside this sensor's field of view (false
+    /// for an invalid configuration).
+    pub fn covers(&self, x: f64, y: f64) -> bool {
+        self.region().is_ok_and(|r| r.contains(x, y))
+    }
+
     /// The core region of this sensor's field of view (radians, with the sensor origin).
-    fn region(&self) -> Result<Region> {
+    pub(crate) fn region(&self) -> Result<Region> {
         let region = match (self.kind, self.fov) {
             (
                 SensorKind::Cartesian { .. },
