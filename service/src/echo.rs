@@ -28,9 +28,7 @@ use axum::response::{IntoResponse, Response};
 use filter_core::tracker::{Measurement, Scan, SensorConfig, SensorKind};
 use futures_util::{Sink, SinkExt, Stream, StreamExt};
 use tokio::sync::broadcast::error::RecvError;
-use tracing::Instrument;
 
-use crate::error::{Code, Rejection};
 use crate::server::AppState;
 use crate::wire;
 
@@ -115,29 +113,10 @@ pub(crate) async fn detections(
     if let Err(r) = crate::http::require_read(&state, &headers) {
         return r.into_response();
     }
-    if state.cancel_token().is_cancelled() {
-        return Rejection::new(Code::ShuttingDown, None, "the service is shutting down")
-            .into_response();
-    }
-    let slot = match state.open_connection("detections") {
-        Ok(s) => s,
-        Err(r) => return r.into_response(),
-    };
-    let span = tracing::info_span!("detections", conn = slot.id, %peer);
-    let tasks = state.0.consumers.clone();
-    ws.protocols([crate::page::WS_PROTOCOL])
-        .on_upgrade(move |socket| {
-            tasks.track_future(
-                async move {
-                    tracing::info!("subscribed");
-                    let (sink, stream) = socket.split();
-                    echo_session(state, sink, stream).await;
-                    drop(slot);
-                    tracing::info!("unsubscribed");
-                }
-                .instrument(span),
-            )
-        })
+    crate::http::consumer_upgrade(state, peer, ws, "detections", |state, socket| async move {
+        let (sink, stream) = socket.split();
+        echo_session(state, sink, stream).await;
+    })
 }
 
 /// One echo listener: forward echo messages until the client leaves, the service shuts down

@@ -29,7 +29,7 @@ use std::net::SocketAddr;
 use axum::Router;
 use axum::body::Bytes;
 use axum::extract::rejection::QueryRejection;
-use axum::extract::ws::WebSocketUpgrade;
+use axum::extract::ws::{WebSocket, WebSocketUpgrade};
 use axum::extract::{ConnectInfo, Path, Query, State};
 use axum::http::{HeaderMap, StatusCode, header};
 use axum::response::{IntoResponse, Response};
@@ -339,22 +339,41 @@ async fn frames(
         Ok(f) => f,
         Err(r) => return r.into_response(),
     };
+    consumer_upgrade(state, peer, ws, "frames", move |state, socket| async move {
+        let (sink, stream) = socket.split();
+        frames_session(state, filter, sink, stream).await;
+    })
+}
+
+/// Upgrade a read-only consumer (frames, detection echo): refuse during shutdown, take a
+/// connection slot (`server.limits.max_connections`), then run `session` on the socket as a
+/// tracked task inside a span named by `kind`, releasing the slot when it ends.
+pub(crate) fn consumer_upgrade<F, Fut>(
+    state: AppState,
+    peer: SocketAddr,
+    ws: WebSocketUpgrade,
+    kind: &'static str,
+    session: F,
+) -> Response
+where
+    F: FnOnce(AppState, WebSocket) -> Fut + Send + 'static,
+    Fut: std::future::Future<Output = ()> + Send + 'static,
+{
     if state.cancel_token().is_cancelled() {
         return shutting_down().into_response();
     }
-    let slot = match state.open_connection("frames") {
+    let slot = match state.open_connection(kind) {
         Ok(s) => s,
         Err(r) => return r.into_response(),
     };
-    let span = tracing::info_span!("frames", conn = slot.id, %peer);
+    let span = tracing::info_span!("consumer", kind, conn = slot.id, %peer);
     let tasks = state.0.consumers.clone();
     ws.protocols([crate::page::WS_PROTOCOL])
         .on_upgrade(move |socket| {
             tasks.track_future(
                 async move {
                     tracing::info!("subscribed");
-                    let (sink, stream) = socket.split();
-                    frames_session(state, filter, sink, stream).await;
+                    session(state, socket).await;
                     drop(slot);
                     tracing::info!("unsubscribed");
                 }
