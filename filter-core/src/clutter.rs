@@ -33,7 +33,7 @@
 use std::f64::consts::PI;
 
 use crate::error::{Error, Result, check_non_negative, check_positive, check_prob};
-use crate::measurement::{bearing_of, wrap_angle};
+use crate::measurement::bearing_of;
 use crate::stats;
 
 /// Detection probability P_D, constant or as a function of range.
@@ -185,18 +185,9 @@ impl Region {
                 y_min,
                 y_max,
             } => x >= x_min && x <= x_max && y >= y_min && y <= y_max,
-            Self::Sector {
-                origin,
-                min_range,
-                max_range,
-                bearing_start,
-                bearing_extent,
-            } => {
+            Self::Sector { origin, .. } => {
                 let (dx, dy) = (x - origin[0], y - origin[1]);
-                let r = dx.hypot(dy);
-                r >= min_range
-                    && r <= max_range
-                    && self.bearing_inside(bearing_of(dx, dy), bearing_start, bearing_extent)
+                self.contains_polar(dx.hypot(dy), bearing_of(dx, dy))
             }
         }
     }
@@ -273,18 +264,6 @@ impl Region {
         match self {
             Self::Rect { .. } => self.density(),
             Self::Sector { .. } => self.density() / range.max(1e-9),
-        }
-    }
-
-    /// Centre bearing of a sector (rad), for display; `None` for a rectangle.
-    pub fn centre_bearing(&self) -> Option<f64> {
-        match *self {
-            Self::Sector {
-                bearing_start,
-                bearing_extent,
-                ..
-            } => Some(wrap_angle(bearing_start + bearing_extent / 2.0).rem_euclid(2.0 * PI)),
-            Self::Rect { .. } => None,
         }
     }
 }
