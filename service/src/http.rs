@@ -339,9 +339,11 @@ async fn frames(
         Ok(f) => f,
         Err(r) => return r.into_response(),
     };
+    // Subscribe before answering the upgrade: see `frames_session`.
+    let rx = state.0.hub.subscribe();
     consumer_upgrade(state, peer, ws, "frames", move |state, socket| async move {
         let (sink, stream) = socket.split();
-        frames_session(state, filter, sink, stream).await;
+        frames_session(state, filter, rx, sink, stream).await;
     })
 }
 

@@ -505,11 +505,16 @@ async fn handle_batch(state: &AppState, principal: Principal, text: &str) -> Str
     }
 }
 
-/// One frame subscriber: forward frames (filtered if asked) until the client leaves or the
-/// engine has published its last frame.
+/// One frame subscriber: forward frames (filtered if asked) from `rx` until the client leaves
+/// or the engine has published its last frame.
+///
+/// The caller subscribes (`Hub::subscribe`) *before* it answers the upgrade, so every frame
+/// made after the client saw its connection accepted reaches it; subscribing inside the
+/// session would lose the frames of batches sent right after the handshake.
 pub(crate) async fn frames_session<S, R>(
     state: AppState,
     filter: TrackQuery,
+    mut rx: tokio::sync::broadcast::Receiver<std::sync::Arc<FrameMsg>>,
     mut sink: S,
     mut stream: R,
 ) where
@@ -517,7 +522,6 @@ pub(crate) async fn frames_session<S, R>(
     R: Stream<Item = Result<Message, axum::Error>> + Unpin,
 {
     let hub = &state.0.hub;
-    let mut rx = hub.subscribe();
     let mut done = hub.done();
     let engine_done = async move {
         let _ = done.wait_for(|d| *d).await;
