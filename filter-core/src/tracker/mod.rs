@@ -1195,11 +1195,7 @@ impl Tracker {
                 // JPDA weighs hypotheses with the existence probability (joint IPDA); GNN's
                 // hard decision uses the plain likelihood ratio against 1 − P_D P_G, so that a
                 // new track with a small existence still takes the detection that fits it.
-                let r = if matches!(self.method, Method::Gnn) {
-                    1.0
-                } else {
-                    tr.existence
-                };
+                let r = if is_gnn { 1.0 } else { tr.existence };
                 let ln_miss = (1.0 - r * pd * pg).ln();
                 let range =
                     first_pair[ti as usize]..first_pair[ti as usize] + pair_count[ti as usize];
@@ -1245,7 +1241,6 @@ impl Tracker {
         };
         let (nis_lo, nis_hi) = rt.nis_interval;
         let management = self.config.management;
-        let gnn = matches!(self.method, Method::Gnn);
         let mut nus: Vec<SVector<f64, M>> = Vec::new();
         let mut ws: Vec<f64> = Vec::new();
         for ti in 0..n_tracks {
@@ -1264,7 +1259,7 @@ impl Tracker {
             // Existence: joint IPDA. For GNN the hard decision is turned into the IPDA update
             // with the assigned detection alone.
             let q = r * (1.0 - pd * pg) / (1.0 - r * pd * pg);
-            let r_post = if gnn {
+            let r_post = if is_gnn {
                 let lr: f64 = pairs[range.clone()]
                     .iter()
                     .zip(&beta[range.clone()])
@@ -1277,7 +1272,7 @@ impl Tracker {
                 (b_det + b0 * q).clamp(0.0, 1.0)
             };
             // Conditional (given existence) weights for the state update.
-            let (w0, scale) = if gnn {
+            let (w0, scale) = if is_gnn {
                 (b0, 1.0)
             } else if r_post > 0.0 {
                 (b0 * q / r_post, 1.0 / r_post)
