@@ -230,7 +230,7 @@ fn two_asynchronous_radars_give_one_track_per_object() {
     let fused = last
         .tracks
         .iter()
-        .filter(|t| t.status == TrackStatus::Confirmed && t.sensors == vec![0, 1])
+        .filter(|t| t.status == TrackStatus::Confirmed && t.sensors.iter().eq([0, 1]))
         .count();
     eprintln!(
         "two radars: {good}/{counted} scans with exactly one confirmed track per vessel, {duplicated} duplicate sightings, {fused} tracks fed by both"

@@ -309,7 +309,7 @@ impl TrackFilter for TrackQuery {
             }
         }
         if let Some(list) = &self.sensors
-            && !t.sensors.iter().any(|s| list.contains(s))
+            && !t.sensors.iter().any(|s| list.contains(&s))
         {
             return false;
         }

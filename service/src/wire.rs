@@ -570,7 +570,7 @@ pub fn write_track(out: &mut String, t: &filter_core::tracker::TrackView, ids: &
         if i > 0 {
             out.push(',');
         }
-        push_json_str(out, ids.get(*s).map_or("", String::as_str));
+        push_json_str(out, ids.get(s).map_or("", String::as_str));
     }
     out.push_str("],\"cov\":[");
     for (i, v) in upper_triangle(&t.covariance).iter().enumerate() {
@@ -927,8 +927,8 @@ mod tests {
         let ids = vec!["east-pier-radar".to_string()];
         let mut p = picture();
         p.tracks[0].state[0] = f64::NAN;
-        p.tracks[0].sensors = vec![0];
-        p.tracks[1].sensors = vec![0];
+        p.tracks[0].sensors = [0].into_iter().collect();
+        p.tracks[1].sensors = [0].into_iter().collect();
         let mut out = String::new();
         write_frame(&mut out, &p, &ids, &AllTracks);
         assert_eq!(

@@ -212,6 +212,36 @@ pub(crate) fn linear_multitarget(c: &[Candidates], n_dets: usize) -> Vec<Margina
         .collect()
 }
 
+/// Marginals of a track alone in its cluster, in place: `weights` holds the weights of its
+/// options on entry (any common scale, like `missed`) and their marginals on return; the
+/// missed marginal is returned. JPDA normalises (the hypotheses are the track's own: missed or
+/// one option); GNN takes the heaviest option if it outweighs "missed" (ties: the first).
+pub(crate) fn lone_in_place(missed: f64, weights: &mut [f64], method: Method) -> f64 {
+    match method {
+        Method::Jpda { .. } => {
+            let norm = missed + weights.iter().sum::<f64>();
+            weights.iter_mut().for_each(|w| *w /= norm);
+            missed / norm
+        }
+        Method::Gnn => {
+            let best = weights
+                .iter()
+                .enumerate()
+                .filter(|(_, w)| **w > missed)
+                .max_by(|a, b| a.1.total_cmp(b.1).then(b.0.cmp(&a.0)))
+                .map(|(k, _)| k);
+            weights.iter_mut().for_each(|w| *w = 0.0);
+            match best {
+                Some(k) => {
+                    weights[k] = 1.0;
+                    0.0
+                }
+                None => 1.0,
+            }
+        }
+    }
+}
+
 /// Associate one cluster of `c.len()` tracks and `n_dets` detections.
 pub(crate) fn associate(
     c: &[Candidates],
@@ -221,32 +251,10 @@ pub(crate) fn associate(
 ) -> ClusterOutcome {
     // A lone track (the common case) needs no joint reasoning: its hypotheses are its own.
     if let [t] = c {
-        let norm = t.missed + t.options.iter().map(|o| o.1).sum::<f64>();
-        let marginals = match method {
-            Method::Jpda { .. } => Marginals {
-                missed: t.missed / norm,
-                options: t.options.iter().map(|o| o.1 / norm).collect(),
-            },
-            Method::Gnn => {
-                let best = t
-                    .options
-                    .iter()
-                    .enumerate()
-                    .filter(|(_, o)| o.1 > t.missed)
-                    .max_by(|a, b| a.1.1.total_cmp(&b.1.1).then(b.0.cmp(&a.0)));
-                let mut options = vec![0.0; t.options.len()];
-                let missed = match best {
-                    Some((k, _)) => {
-                        options[k] = 1.0;
-                        0.0
-                    }
-                    None => 1.0,
-                };
-                Marginals { missed, options }
-            }
-        };
+        let mut options: Vec<f64> = t.options.iter().map(|o| o.1).collect();
+        let missed = lone_in_place(t.missed, &mut options, method);
         return ClusterOutcome {
-            marginals: vec![marginals],
+            marginals: vec![Marginals { missed, options }],
             hypotheses: t.options.len() + 1,
             truncated: false,
         };

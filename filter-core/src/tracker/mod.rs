@@ -25,6 +25,9 @@
 mod assoc;
 mod grid;
 mod health;
+mod sensor_set;
+
+pub use sensor_set::{MAX_SENSORS, SensorSet};
 
 use std::collections::BTreeMap;
 
@@ -34,7 +37,7 @@ use crate::assign::Solver;
 use crate::clutter::{DetectionProbability, Region};
 use crate::error::{Error, ErrorKind, Result, check_non_negative, check_positive, check_prob};
 use crate::gating::Gate;
-use crate::gaussian::{Gaussian, PreparedUpdate};
+use crate::gaussian::Gaussian;
 use crate::measurement::{
     CartesianPosition, Conversion, MeasurementModel, RangeBearing, RangeBearingRate,
     polar_to_cartesian,
@@ -425,8 +428,8 @@ pub struct TrackView {
     pub existence: f64,
     /// Time (s) of the last scan in which the track was probably detected (probability > ½).
     pub last_update: f64,
-    /// Indices of the sensors that have contributed detections, ascending.
-    pub sensors: Vec<usize>,
+    /// Indices of the sensors that have contributed detections.
+    pub sensors: SensorSet,
 }
 
 /// Counters of one applied scan.
@@ -573,7 +576,7 @@ struct Track {
     existence: f64,
     status: TrackStatus,
     last_update: f64,
-    sensors: Vec<usize>,
+    sensors: SensorSet,
     /// Bit history of covered scans, newest in bit 0: 1 = detected.
     history: u32,
     /// Covered scans seen (saturating at 32).
@@ -626,12 +629,79 @@ impl Ord for Time {
     }
 }
 
-/// Reused per-scan buffers.
+/// Reused per-scan buffers: a large scan allocates nothing once these have grown, and the
+/// memory they touch stays the same from scan to scan.
 #[derive(Debug, Default)]
 struct Scratch {
     grid: Grid,
     solver: Solver,
     candidates: Vec<u32>,
+    work: Work,
+    m2: Typed<2>,
+    m3: Typed<3>,
+}
+
+/// Per-scan buffers that do not depend on the measurement dimension (see [`Tracker::update`]).
+#[derive(Debug, Default)]
+struct Work {
+    half_widths: Vec<f64>,
+    parent: Vec<u32>,
+    owner: Vec<u32>,
+    first_pair: Vec<usize>,
+    pair_count: Vec<usize>,
+    by_root: Vec<(u32, u32)>,
+    members: Vec<u32>,
+    beta0: Vec<f64>,
+    beta: Vec<f64>,
+    used: Vec<f64>,
+    claimed: Vec<f64>,
+    local: Vec<u32>,
+    dets: Vec<u32>,
+    /// Candidates of the tracks of one cluster; entries past the cluster's size are kept (with
+    /// their option buffers) for the next cluster.
+    pool: Vec<Candidates>,
+    lns: Vec<f64>,
+    ws: Vec<f64>,
+}
+
+/// A gated (track, detection) pair: indices, innovation, ln likelihood ratio, d².
+type Pair<const M: usize> = (u32, u32, SVector<f64, M>, f64, f64);
+
+/// Per-scan buffers of measurement dimension M.
+#[derive(Debug, Default)]
+struct Typed<const M: usize> {
+    /// Per track: what gating needs (None: not covered by the sensor).
+    prepared: Vec<Option<GateRecord<M>>>,
+    pairs: Vec<Pair<M>>,
+    nus: Vec<SVector<f64, M>>,
+}
+
+/// What gating needs of one covered track's [`crate::gaussian::PreparedUpdate`]: ẑ, S⁻¹, ln det S, P_D at the
+/// track and the half-width (m) of the gate's bounding box. The gain is recomputed in the update
+/// for the tracks that gated a detection: keeping whole prepared updates of every track for the
+/// length of the scan made large scans stream through twice the memory.
+#[derive(Debug, Clone, Copy)]
+struct GateRecord<const M: usize> {
+    zhat: SVector<f64, M>,
+    s_inv: nalgebra::SMatrix<f64, M, M>,
+    ln_det_s: f64,
+    pd: f64,
+    hw: f64,
+}
+
+/// The buffers of measurement dimension M inside [`Scratch`].
+trait TypedScratch<const M: usize> {
+    fn typed(&mut self) -> &mut Typed<M>;
+}
+impl TypedScratch<2> for Scratch {
+    fn typed(&mut self) -> &mut Typed<2> {
+        &mut self.m2
+    }
+}
+impl TypedScratch<3> for Scratch {
+    fn typed(&mut self) -> &mut Typed<3> {
+        &mut self.m3
+    }
 }
 
 /// The multi-object tracker of one site. See the module documentation for the flow of a scan.
@@ -682,6 +752,12 @@ impl Tracker {
     /// duplicate sensor ids are refused.
     pub fn new(config: TrackerConfig, sensors: Vec<SensorConfig>) -> Result<Self> {
         config.validate()?;
+        if sensors.len() > MAX_SENSORS {
+            return Err(Error::param(format!(
+                "{} sensors configured; one tracker takes at most {MAX_SENSORS}",
+                sensors.len()
+            )));
+        }
         let mut runtime = Vec::with_capacity(sensors.len());
         for (i, s) in sensors.iter().enumerate() {
             if sensors[..i].iter().any(|o| o.id == s.id) {
@@ -1047,7 +1123,52 @@ impl Tracker {
         xy: &[[f64; 2]],
         t: f64,
         stats: &mut ScanStats,
+    ) where
+        Scratch: TypedScratch<M>,
+    {
+        let mut typed = std::mem::take(self.scratch.typed());
+        let mut work = std::mem::take(&mut self.scratch.work);
+        self.update_with(s, model, zs, xy, t, stats, &mut typed, &mut work);
+        *self.scratch.typed() = typed;
+        self.scratch.work = work;
+    }
+
+    /// [`Tracker::update`] with its buffers taken out of the scratch space.
+    #[allow(clippy::too_many_arguments)]
+    fn update_with<const M: usize, Me: MeasurementModel<4, M>>(
+        &mut self,
+        s: usize,
+        model: &Me,
+        zs: &[SVector<f64, M>],
+        xy: &[[f64; 2]],
+        t: f64,
+        stats: &mut ScanStats,
+        typed: &mut Typed<M>,
+        work: &mut Work,
     ) {
+        let Typed {
+            prepared,
+            pairs,
+            nus,
+        } = typed;
+        let Work {
+            half_widths,
+            parent,
+            owner,
+            first_pair,
+            pair_count,
+            by_root,
+            members,
+            beta0,
+            beta,
+            used,
+            claimed,
+            local,
+            dets,
+            pool,
+            lns,
+            ws,
+        } = work;
         // Reported tracks come first, candidates after (see the end of this function).
         let reported_at_start = self.tracks.partition_point(|t| t.id != 0);
         let rt = &self.runtime[s];
@@ -1056,9 +1177,8 @@ impl Tracker {
         let gamma = gate.threshold();
         let n_tracks = self.tracks.len();
         // 1. Prepared updates and gate bounding boxes of the covered tracks.
-        let mut prepared: Vec<Option<(PreparedUpdate<4, M>, f64, f64)>> =
-            Vec::with_capacity(n_tracks);
-        let mut half_widths = Vec::with_capacity(n_tracks);
+        prepared.clear();
+        half_widths.clear();
         for tr in &self.tracks {
             let (x, y) = (tr.state.mean()[0], tr.state.mean()[1]);
             if !rt.region.contains(x, y) {
@@ -1085,7 +1205,13 @@ impl Tracker {
                 }
             };
             half_widths.push(hw);
-            prepared.push(Some((prep, pd, hw)));
+            prepared.push(Some(GateRecord {
+                zhat: prep.zhat,
+                s_inv: prep.s_inv,
+                ln_det_s: prep.ln_det_s(),
+                pd,
+                hw,
+            }));
         }
         // 2. Spatial index with the median half-width as the cell size.
         let cell = if half_widths.is_empty() {
@@ -1098,9 +1224,18 @@ impl Tracker {
         };
         self.scratch.grid.rebuild(xy, cell.max(1.0));
         // 3. Gating: (track, detection, innovation, ln likelihood ratio, d²).
-        let mut pairs: Vec<(u32, u32, SVector<f64, M>, f64, f64)> = Vec::new();
+        pairs.clear();
         for (ti, p) in prepared.iter().enumerate() {
-            let Some((prep, pd, hw)) = p else { continue };
+            let Some(GateRecord {
+                zhat,
+                s_inv,
+                ln_det_s,
+                pd,
+                hw,
+            }) = p
+            else {
+                continue;
+            };
             let (x, y) = (
                 self.tracks[ti].state.mean()[0],
                 self.tracks[ti].state.mean()[1],
@@ -1112,16 +1247,19 @@ impl Tracker {
                 .query(x - hw, y - hw, x + hw, y + hw, cands);
             cands.sort_unstable();
             for &j in cands.iter() {
-                let nu = model.residual(&zs[j as usize], &prep.zhat);
-                let d2 = prep.d2(&nu);
+                let nu = model.residual(&zs[j as usize], zhat);
+                // d² = νᵀ S⁻¹ ν, as PreparedUpdate::d2.
+                let d2 = (nu.transpose() * s_inv * nu)[(0, 0)];
                 if gate.accepts(d2) {
-                    let ln_lr = pd.ln() + prep.ln_likelihood_from_d2(d2) - rt.ln_kappa;
+                    let ln_lr =
+                        pd.ln() + stats::normal_ln_from_parts(d2, *ln_det_s, M) - rt.ln_kappa;
                     pairs.push((ti as u32, j, nu, ln_lr, d2));
                 }
             }
         }
         // 4. Clusters by union–find over tracks sharing a detection.
-        let mut parent: Vec<u32> = (0..n_tracks as u32).collect();
+        parent.clear();
+        parent.extend(0..n_tracks as u32);
         fn find(p: &mut [u32], mut i: u32) -> u32 {
             while p[i as usize] != i {
                 p[i as usize] = p[p[i as usize] as usize];
@@ -1133,10 +1271,11 @@ impl Tracker {
         // below LINK_MIN of its track's missed-detection weight changes the marginals of the
         // other tracks by less than that fraction, so it is left to its own track's cluster.
         let is_gnn = matches!(self.method, Method::Gnn);
-        let mut owner: Vec<u32> = vec![u32::MAX; zs.len()];
-        for &(ti, j, _, ln_lr, _) in &pairs {
+        owner.clear();
+        owner.resize(zs.len(), u32::MAX);
+        for &(ti, j, _, ln_lr, _) in pairs.iter() {
             let tr = &self.tracks[ti as usize];
-            let pd = prepared[ti as usize].as_ref().map_or(0.0, |p| p.1);
+            let pd = prepared[ti as usize].as_ref().map_or(0.0, |p| p.pd);
             let r = if is_gnn { 1.0 } else { tr.existence };
             if !is_gnn && r.ln() + ln_lr - (1.0 - r * pd * pg).ln() < LINK_MIN.ln() {
                 continue;
@@ -1145,15 +1284,17 @@ impl Tracker {
             if o == u32::MAX {
                 owner[j as usize] = ti;
             } else {
-                let (a, b) = (find(&mut parent, ti), find(&mut parent, o));
+                let (a, b) = (find(parent, ti), find(parent, o));
                 if a != b {
                     parent[a.max(b) as usize] = a.min(b);
                 }
             }
         }
         // Pairs of each track, in order (pairs are generated track by track).
-        let mut first_pair = vec![usize::MAX; n_tracks + 1];
-        let mut pair_count = vec![0usize; n_tracks];
+        first_pair.clear();
+        first_pair.resize(n_tracks + 1, usize::MAX);
+        pair_count.clear();
+        pair_count.resize(n_tracks, 0);
         for (k, &(ti, ..)) in pairs.iter().enumerate() {
             if first_pair[ti as usize] == usize::MAX {
                 first_pair[ti as usize] = k;
@@ -1161,37 +1302,35 @@ impl Tracker {
             pair_count[ti as usize] += 1;
         }
         // Group tracks with gated detections by cluster root (sorted: deterministic order).
-        let mut by_root: Vec<(u32, u32)> = Vec::with_capacity(n_tracks);
+        by_root.clear();
         for ti in 0..n_tracks as u32 {
             if pair_count[ti as usize] > 0 {
-                by_root.push((find(&mut parent, ti), ti));
+                by_root.push((find(parent, ti), ti));
             }
         }
         by_root.sort_unstable();
-        let mut members: Vec<u32> = Vec::new();
         // 5. Associate each cluster; collect per-track marginals (missed, [(pair index, β)]).
-        let mut beta0 = vec![1.0f64; n_tracks];
-        let mut beta: Vec<f64> = vec![0.0; pairs.len()];
-        let mut used = vec![0.0f64; zs.len()];
+        beta0.clear();
+        beta0.resize(n_tracks, 1.0);
+        beta.clear();
+        beta.resize(pairs.len(), 0.0);
+        used.clear();
+        used.resize(zs.len(), 0.0);
         // Σ_t P(j is t's | t exists): a detection that some track would own if it exists seeds
         // no new candidate (otherwise every young, low-existence track would spawn a duplicate
         // of itself from its own detections).
-        let mut claimed = vec![0.0f64; zs.len()];
-        let mut local: Vec<u32> = vec![u32::MAX; zs.len()];
-        let mut dets: Vec<u32> = Vec::new();
-        let mut cands: Vec<Candidates> = Vec::new();
-        let mut lns: Vec<f64> = Vec::new();
+        claimed.clear();
+        claimed.resize(zs.len(), 0.0);
+        local.clear();
+        local.resize(zs.len(), u32::MAX);
         for group in by_root.chunk_by(|a, b| a.0 == b.0) {
             members.clear();
             members.extend(group.iter().map(|g| g.1));
             dets.clear();
-            cands.clear();
-            for &ti in &members {
+            let mut n_cands = 0;
+            for &ti in members.iter() {
                 let tr = &self.tracks[ti as usize];
-                let (_, pd, _) = prepared[ti as usize]
-                    .as_ref()
-                    .map(|p| (0, p.1, 0))
-                    .unwrap_or((0, 0.0, 0));
+                let pd = prepared[ti as usize].as_ref().map_or(0.0, |p| p.pd);
                 // JPDA weighs hypotheses with the existence probability (joint IPDA); GNN's
                 // hard decision uses the plain likelihood ratio against 1 − P_D P_G, so that a
                 // new track with a small existence still takes the detection that fits it.
@@ -1202,11 +1341,29 @@ impl Tracker {
                 lns.clear();
                 lns.extend(pairs[range.clone()].iter().map(|p| r.ln() + p.3));
                 let mx = lns.iter().copied().fold(ln_miss, f64::max);
-                let mut c = Candidates {
-                    missed: (ln_miss - mx).exp(),
-                    options: Vec::with_capacity(lns.len()),
-                };
-                for (p, l) in pairs[range].iter().zip(&lns) {
+                let missed = (ln_miss - mx).exp();
+                if members.len() == 1 {
+                    // A lone track (the common case): its marginals straight into β, no
+                    // candidate lists and no joint reasoning.
+                    for (b, l) in beta[range.clone()].iter_mut().zip(lns.iter()) {
+                        *b = (l - mx).exp();
+                    }
+                    beta0[ti as usize] =
+                        assoc::lone_in_place(missed, &mut beta[range.clone()], self.method);
+                    for (b, p) in beta[range.clone()].iter().zip(&pairs[range.clone()]) {
+                        used[p.1 as usize] += *b;
+                    }
+                    stats.hypotheses += range.len() + 1;
+                    continue;
+                }
+                if pool.len() == n_cands {
+                    pool.push(Candidates::default());
+                }
+                let c = &mut pool[n_cands];
+                n_cands += 1;
+                c.missed = missed;
+                c.options.clear();
+                for (p, l) in pairs[range].iter().zip(lns.iter()) {
                     let j = p.1 as usize;
                     if local[j] == u32::MAX {
                         local[j] = dets.len() as u32;
@@ -1214,12 +1371,18 @@ impl Tracker {
                     }
                     c.options.push((local[j], (l - mx).exp()));
                 }
-                cands.push(c);
             }
-            let outcome =
-                assoc::associate(&cands, dets.len(), self.method, &mut self.scratch.solver);
             stats.clusters += 1;
             stats.max_cluster_tracks = stats.max_cluster_tracks.max(members.len());
+            if members.len() == 1 {
+                continue;
+            }
+            let outcome = assoc::associate(
+                &pool[..n_cands],
+                dets.len(),
+                self.method,
+                &mut self.scratch.solver,
+            );
             stats.hypotheses += outcome.hypotheses;
             stats.truncated_clusters += usize::from(outcome.truncated);
             for (&ti, m) in members.iter().zip(&outcome.marginals) {
@@ -1230,7 +1393,7 @@ impl Tracker {
                     used[pairs[start + k].1 as usize] += *b;
                 }
             }
-            for &j in &dets {
+            for &j in dets.iter() {
                 local[j as usize] = u32::MAX;
             }
         }
@@ -1241,10 +1404,8 @@ impl Tracker {
         };
         let (nis_lo, nis_hi) = rt.nis_interval;
         let management = self.config.management;
-        let mut nus: Vec<SVector<f64, M>> = Vec::new();
-        let mut ws: Vec<f64> = Vec::new();
         for ti in 0..n_tracks {
-            let Some((prep, pd, _)) = prepared[ti].as_ref() else {
+            let Some(&GateRecord { pd, .. }) = prepared[ti].as_ref() else {
                 continue;
             };
             let tr = &mut self.tracks[ti];
@@ -1302,7 +1463,13 @@ impl Tracker {
             for (w, p) in ws[1..].iter().zip(&pairs[range.clone()]) {
                 claimed[p.1 as usize] += w;
             }
-            tr.state = pda_combine(&tr.state, prep, &nus, &ws);
+            // With no gated detection (or none with weight) the prediction stands.
+            if !nus.is_empty()
+                && ws[0] < 1.0
+                && let Ok(prep) = tr.state.prepare(model)
+            {
+                tr.state = pda_combine(&tr.state, &prep, nus, ws);
+            }
             tr.existence = r_post;
             tr.age += 1;
             // Detected, given that the object exists: 1 − (conditional missed weight).
@@ -1312,9 +1479,7 @@ impl Tracker {
             if detected {
                 tr.misses = 0;
                 tr.last_update = t;
-                if let Err(pos) = tr.sensors.binary_search(&s) {
-                    tr.sensors.insert(pos, s);
-                }
+                tr.sensors.insert(s);
             } else {
                 tr.misses += 1;
             }
@@ -1422,7 +1587,7 @@ impl Tracker {
                 existence: r0,
                 status: TrackStatus::Tentative,
                 last_update: t,
-                sensors: vec![s],
+                sensors: [s].into_iter().collect(),
                 history: 1,
                 covered: 1,
                 misses: 0,
@@ -1502,7 +1667,7 @@ fn view(tr: &Track) -> TrackView {
         covariance,
         existence: tr.existence,
         last_update: tr.last_update,
-        sensors: tr.sensors.clone(),
+        sensors: tr.sensors,
     }
 }
 
