@@ -32,8 +32,8 @@ pub(crate) struct ScanHealth {
 #[derive(Debug, Clone, Default)]
 pub(crate) struct HealthWindow {
     capacity: usize,
-    scans: VecDeque<ScanHealth>,
-    sum: ScanHealth,
+    pub(crate) scans: VecDeque<ScanHealth>,
+    pub(crate) sum: ScanHealth,
     pub(crate) total_scans: u64,
 }
 

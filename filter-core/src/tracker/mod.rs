@@ -26,8 +26,10 @@ mod assoc;
 mod grid;
 mod health;
 mod sensor_set;
+mod snapshot;
 
 pub use sensor_set::{MAX_SENSORS, SensorSet};
+pub use snapshot::{HealthWindowSnapshot, SNAPSHOT_VERSION, TrackSnapshot, TrackerSnapshot};
 
 use std::collections::BTreeMap;
 
@@ -190,6 +192,7 @@ impl TrackerConfig {
 }
 
 /// What a sensor measures and its noise.
+#[cfg_attr(feature = "serde", derive(serde::Serialize, serde::Deserialize))]
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum SensorKind {
     /// Positions in the site frame, noise `sigma` (m) per axis.
@@ -213,6 +216,7 @@ pub enum SensorKind {
 }
 
 /// The region a sensor observes, in configuration units (metres, degrees).
+#[cfg_attr(feature = "serde", derive(serde::Serialize, serde::Deserialize))]
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum FieldOfView {
     /// Site-frame rectangle (m), for cartesian sensors.
@@ -241,6 +245,7 @@ pub enum FieldOfView {
 }
 
 /// One sensor's configuration: its model and the parameters of its clutter measurement model.
+#[cfg_attr(feature = "serde", derive(serde::Serialize, serde::Deserialize))]
 #[derive(Debug, Clone, PartialEq)]
 pub struct SensorConfig {
     /// Sensor id, as in the wire format.
@@ -371,6 +376,7 @@ pub struct SensorParams {
 }
 
 /// One detection as the tracker takes it.
+#[cfg_attr(feature = "serde", derive(serde::Serialize, serde::Deserialize))]
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum Measurement {
     /// Site-frame position (m).
@@ -392,6 +398,7 @@ pub enum Measurement {
 }
 
 /// One scan of one sensor.
+#[cfg_attr(feature = "serde", derive(serde::Serialize, serde::Deserialize))]
 #[derive(Debug, Clone, PartialEq)]
 pub struct Scan {
     /// Index of the sensor in the tracker's sensor list.
@@ -405,6 +412,7 @@ pub struct Scan {
 }
 
 /// Track status.
+#[cfg_attr(feature = "serde", derive(serde::Serialize, serde::Deserialize))]
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
 pub enum TrackStatus {
     /// Not yet confirmed.

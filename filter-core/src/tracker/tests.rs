@@ -312,3 +312,143 @@ proptest! {
         }
     }
 }
+
+/// Scans of two sensors (cartesian every 1 s, polar every 2 s) over five crossing vessels in
+/// clutter, from the seeded simulator.
+fn two_sensor_scans(n: usize) -> Vec<Scan> {
+    use crate::sim::{Leg, Scenario, SimSensor, SimTarget, Simulator};
+    let targets = (0..5)
+        .map(|k| SimTarget {
+            name: format!("v{k}"),
+            birth: 2.0 * k as f64,
+            death: 1e9,
+            initial: [-800.0 + 300.0 * k as f64, -600.0, 4.0, 3.0 + k as f64],
+            legs: vec![Leg::Turn {
+                duration: 1e9,
+                rate_deg_s: 0.5 - 0.25 * k as f64,
+            }],
+        })
+        .collect();
+    let sc = Scenario {
+        sensors: vec![
+            SimSensor {
+                config: camera(),
+                period: 1.0,
+                offset: 0.0,
+            },
+            SimSensor {
+                config: radar(),
+                period: 2.0,
+                offset: 0.5,
+            },
+        ],
+        targets,
+        start: 1000.0,
+        duration: None,
+        seed: 7,
+    };
+    Simulator::new(&sc)
+        .unwrap()
+        .take(n)
+        .map(|s| s.scan)
+        .collect()
+}
+
+/// Exact text of a picture list: Debug prints every f64 as its shortest round-trip form, so
+/// equal text means equal bits.
+fn exact(p: &[Picture]) -> String {
+    format!("{p:?}")
+}
+
+#[test]
+fn restored_snapshot_continues_bit_for_bit() {
+    let scans = two_sensor_scans(90);
+    let config = TrackerConfig {
+        reorder_window: 1.5,
+        ..TrackerConfig::default()
+    };
+    let sensors = vec![camera(), radar()];
+    // Delivered slightly out of order, so that the reorder buffer holds scans at the cut.
+    let mut order: Vec<Scan> = scans.clone();
+    for pair in order.chunks_mut(3) {
+        pair.reverse();
+    }
+    let mut whole = Tracker::new(config.clone(), sensors.clone()).unwrap();
+    let mut first = Tracker::new(config.clone(), sensors).unwrap();
+    let change = SensorParams {
+        clutter_rate: Some(7.5),
+        ..SensorParams::default()
+    };
+    let cut = 50;
+    let mut expected = Vec::new();
+    let mut got = Vec::new();
+    for (k, s) in order.iter().enumerate() {
+        if k == 20 {
+            whole.update_sensor(1, &change).unwrap();
+            first.update_sensor(1, &change).unwrap();
+        }
+        let out = whole.submit(s.clone()).unwrap();
+        if k >= cut {
+            expected.extend(out);
+        } else {
+            first.submit(s.clone()).unwrap();
+        }
+    }
+    expected.extend(whole.flush());
+    let snap = first.snapshot();
+    assert!(
+        !snap.buffered.is_empty(),
+        "the cut should fall with scans buffered"
+    );
+    assert!(
+        snap.tracks
+            .iter()
+            .any(|t| t.status == TrackStatus::Confirmed)
+    );
+    assert_eq!(snap.sensors[1].clutter_rate, 7.5);
+    let mut restored = Tracker::restore(config, snap.clone()).unwrap();
+    assert_eq!(
+        restored.snapshot(),
+        snap,
+        "restore then snapshot is the identity"
+    );
+    for s in &order[cut..] {
+        got.extend(restored.submit(s.clone()).unwrap());
+    }
+    got.extend(restored.flush());
+    assert_eq!(got.len(), expected.len());
+    assert_eq!(exact(&got), exact(&expected));
+    assert_eq!(
+        format!("{:?}", restored.sensor_health(1)),
+        format!("{:?}", whole.sensor_health(1))
+    );
+}
+
+#[test]
+fn restore_refuses_inconsistent_snapshots_naming_the_part() {
+    let mut t = Tracker::new(TrackerConfig::default(), vec![camera(), radar()]).unwrap();
+    for s in two_sensor_scans(30) {
+        t.submit(s).unwrap();
+    }
+    let good = t.snapshot();
+    assert!(good.tracks.len() >= 2);
+    let refuse = |edit: &dyn Fn(&mut TrackerSnapshot), needle: &str| {
+        let mut s = good.clone();
+        edit(&mut s);
+        let e = Tracker::restore(TrackerConfig::default(), s).unwrap_err();
+        assert!(
+            e.to_string().contains(needle),
+            "{e} should mention {needle}"
+        );
+    };
+    refuse(&|s| s.version = 99, "version 99");
+    refuse(&|s| s.tracks[0].mean[1] = f64::NAN, "tracks[0]");
+    refuse(&|s| s.tracks[1].cov[0][0] = -5.0, "tracks[1]");
+    refuse(&|s| s.tracks[0].existence = 1.5, "existence");
+    refuse(&|s| s.tracks.swap(0, 1), "ascend");
+    refuse(&|s| s.next_id = 1, "next_id");
+    refuse(&|s| s.tracks[0].sensors = [1 << 5, 0], "sensor index");
+    refuse(&|s| s.health.pop().map_or((), |_| ()), "health windows");
+    refuse(&|s| s.sensors[0].detection_probability = 2.0, "sensors");
+    Tracker::restore(TrackerConfig::default(), good).unwrap();
+}
