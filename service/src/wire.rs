@@ -444,7 +444,7 @@ impl FrameWire {
                     sensors: t
                         .sensors
                         .iter()
-                        .map(|&s| ids.get(s).cloned().unwrap_or_default())
+                        .map(|s| ids.get(s).cloned().unwrap_or_default())
                         .collect(),
                     cov: upper_triangle(&t.covariance).map(fin).to_vec(),
                 })
