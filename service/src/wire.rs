@@ -890,7 +890,7 @@ mod tests {
                     covariance: cov,
                     existence: 0.999,
                     last_update: 1764600000.25,
-                    sensors: vec![0, 1],
+                    sensors: [0, 1].into_iter().collect(),
                 },
                 TrackView {
                     id: 31,
@@ -899,7 +899,7 @@ mod tests {
                     covariance: cov,
                     existence: 0.4,
                     last_update: 1764599998.0,
-                    sensors: vec![1],
+                    sensors: [1].into_iter().collect(),
                 },
             ],
             ended: vec![7, 9],
