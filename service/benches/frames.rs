@@ -42,7 +42,7 @@ fn picture(tracks: usize) -> Picture {
                 covariance: cov,
                 existence: 0.987_654_321,
                 last_update: 1_764_600_000.25 + f * 0.001,
-                sensors: vec![0, 1],
+                sensors: [0, 1].into_iter().collect(),
             }
         })
         .collect();
