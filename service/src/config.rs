@@ -75,6 +75,17 @@ pub struct Limits {
     /// future and make every later batch `late_scan`, so it is refused with `out_of_range`.
     /// Recordings of the past (staging replays) are never affected; `batch` does not check.
     pub max_time_ahead: f64,
+    /// Seconds between the WebSocket Pings the server sends on every ingest, frames and
+    /// detections connection (default 15; 0 = send none). A live peer's WebSocket layer
+    /// answers each with a Pong, which is what tells a quiet consumer from a dead one.
+    pub ping_interval: f64,
+    /// Seconds the server listens on a WebSocket connection without receiving anything (no
+    /// Pong, no message) before it closes it as dead (default 30; 0 = never). Counted in
+    /// `plotweave_connections_closed_total{reason="idle_timeout"}`; a send the peer does not
+    /// take within this time closes it too (`reason="send_timeout"`). Time an ingest
+    /// connection spends paused by back-pressure does not count (see
+    /// [`crate::keepalive`]). At least twice `ping_interval` when both are set.
+    pub idle_timeout: f64,
 }
 
 impl Default for Limits {
@@ -87,6 +98,8 @@ impl Default for Limits {
             queue_depth: 64,
             frame_buffer: 256,
             max_time_ahead: 300.0,
+            ping_interval: 15.0,
+            idle_timeout: 30.0,
         }
     }
 }
@@ -106,6 +119,9 @@ pub struct ServerConfig {
     pub shutdown_timeout: Duration,
     /// `[server.recording]` when enabled: accepted batches are written there before the ack.
     pub recording: Option<crate::record::RecordingConfig>,
+    /// `[server.snapshot]` when enabled: the tracker's state is saved there periodically and
+    /// restored at start, with the recording since (see `crate::snapshot`).
+    pub snapshot: Option<crate::snapshot::SnapshotConfig>,
 }
 
 /// What the service needs to know about a sensor beyond the core's [`SensorConfig`].
@@ -277,6 +293,7 @@ struct RawServer {
     shutdown_timeout: Option<f64>,
     limits: Option<RawLimits>,
     recording: Option<RawRecording>,
+    snapshot: Option<RawSnapshot>,
 }
 
 #[derive(Debug, Deserialize, Default)]
@@ -289,6 +306,8 @@ struct RawLimits {
     queue_depth: Option<i64>,
     frame_buffer: Option<i64>,
     max_time_ahead: Option<f64>,
+    ping_interval: Option<f64>,
+    idle_timeout: Option<f64>,
 }
 
 #[derive(Debug, Deserialize, Default)]
@@ -300,6 +319,14 @@ struct RawRecording {
     rotate_seconds: Option<f64>,
     sync: Option<String>,
     sync_interval_ms: Option<i64>,
+}
+
+#[derive(Debug, Deserialize, Default)]
+#[serde(deny_unknown_fields)]
+struct RawSnapshot {
+    enabled: Option<bool>,
+    path: Option<String>,
+    interval: Option<f64>,
 }
 
 // ---- validation ---------------------------------------------------------------------------
@@ -392,6 +419,21 @@ impl Problems {
     }
 }
 
+/// `key` as a key path names it: bare when TOML allows it bare (`A-Z a-z 0-9 _ -`), otherwise
+/// quoted with escapes, so that an empty key or one with a dot or a newline is still visible
+/// (the `site_config` fuzz target found `"" = 1` reported under an empty path).
+fn key_in_path(key: &str) -> String {
+    if !key.is_empty()
+        && key
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || c == '_' || c == '-')
+    {
+        key.to_string()
+    } else {
+        format!("{key:?}")
+    }
+}
+
 fn valid_id(id: &str) -> bool {
     !id.is_empty()
         && id.len() <= 64
@@ -474,7 +516,7 @@ pub fn parse(
     };
     for key in doc.keys() {
         p.add(
-            key.as_str(),
+            key_in_path(key),
             "unknown key (known top-level keys: site, tracker, sensor, server)",
         );
     }
@@ -1052,8 +1094,58 @@ fn server_config(
         if let Some(v) = l.max_time_ahead {
             limits.max_time_ahead = p.non_negative(&at("max_time_ahead"), v, " s");
         }
+        let mut keepalive_ok = true;
+        for (key, value, max, slot) in [
+            (
+                "ping_interval",
+                l.ping_interval,
+                3600.0,
+                &mut limits.ping_interval,
+            ),
+            (
+                "idle_timeout",
+                l.idle_timeout,
+                86_400.0,
+                &mut limits.idle_timeout,
+            ),
+        ] {
+            if let Some(v) = value {
+                if v.is_finite() && (0.0..=max).contains(&v) {
+                    *slot = v;
+                } else {
+                    p.add(
+                        at(key),
+                        format!("must be in [0, {max}] s (0 turns it off), got {v}"),
+                    );
+                    keepalive_ok = false;
+                }
+            }
+        }
+        let (ping, idle) = (limits.ping_interval, limits.idle_timeout);
+        let given = |v: Option<f64>| if v.is_some() { "" } else { " (the default)" };
+        if keepalive_ok && idle > 0.0 && ping == 0.0 {
+            p.add(
+                at("idle_timeout"),
+                format!(
+                    "is {idle} s{} but server.limits.ping_interval is 0: without pings a consumer that only listens says nothing and would be closed; set a ping_interval or idle_timeout = 0",
+                    given(l.idle_timeout)
+                ),
+            );
+        } else if keepalive_ok && idle > 0.0 && idle < 2.0 * ping {
+            p.add(
+                at("idle_timeout"),
+                format!(
+                    "must be at least twice server.limits.ping_interval (2 × {ping} s = {} s) so that a live peer's pong arrives in time, got {idle} s{}",
+                    2.0 * ping,
+                    given(l.idle_timeout)
+                ),
+            );
+        }
     }
     let recording = raw.recording.and_then(|r| recording_config(p, r));
+    let snapshot = raw
+        .snapshot
+        .and_then(|r| snapshot_config(p, r, recording.is_some()));
     ServerConfig {
         listen,
         read_token,
@@ -1061,7 +1153,38 @@ fn server_config(
         limits,
         shutdown_timeout: Duration::from_secs_f64(shutdown_timeout),
         recording,
+        snapshot,
     }
+}
+
+/// `[server.snapshot]`: `None` unless `enabled = true` (then `path` is required, and so is an
+/// enabled `[server.recording]`: a snapshot alone would silently lose the batches after it).
+fn snapshot_config(
+    p: &mut Problems,
+    r: RawSnapshot,
+    recording: bool,
+) -> Option<crate::snapshot::SnapshotConfig> {
+    let at = |k: &str| format!("server.snapshot.{k}");
+    let interval = r
+        .interval
+        .map_or(10.0, |v| p.positive(&at("interval"), v, " s"));
+    if r.enabled != Some(true) {
+        return None;
+    }
+    if !recording {
+        p.add(
+            at("enabled"),
+            "needs [server.recording] enabled: a restart restores the snapshot and then the batches recorded after it; without a recording those would be lost",
+        );
+    }
+    let path = p.required(&at("path"), r.path, "the snapshot file")?;
+    if path.trim().is_empty() {
+        p.add(at("path"), "must not be blank");
+    }
+    Some(crate::snapshot::SnapshotConfig {
+        path: path.into(),
+        interval: Duration::from_secs_f64(interval),
+    })
 }
 
 /// `[server.recording]`: `None` unless `enabled = true` (then `directory` is required).
@@ -1340,6 +1463,18 @@ kind = "sonar"
         let got = problems("[sitee]\nname = \"x\"\n");
         assert!(got.iter().any(|g| g.starts_with("sitee: unknown key")));
         assert!(got.iter().any(|g| g.starts_with("site.name: required")));
+        // Found by the site_config fuzz target: a quoted key is named quoted, never as "".
+        let got = problems("\"\" = 1\n\"a.b\" = 2\n\"x\\ny\" = 3\n");
+        for e in [
+            r#""": unknown key"#,
+            r#""a.b": unknown key"#,
+            r#""x\ny": unknown key"#,
+        ] {
+            assert!(
+                got.iter().any(|g| g.starts_with(e)),
+                "missing {e:?} in {got:#?}"
+            );
+        }
         assert!(got.iter().any(|g| g.starts_with("sensor: at least one")));
         let got = problems("[site\nname = 1");
         assert_eq!(got.len(), 1);
@@ -1349,6 +1484,52 @@ kind = "sonar"
             got,
             ["site.name2: unknown field `name2`, expected `name` or `origin`"]
         );
+    }
+
+    #[test]
+    fn keepalive_keys_are_validated_together() {
+        let limits = |l: &str| format!("{GOOD}\n[server.limits]\n{l}\n");
+        let site = parse(
+            &limits("ping_interval = 0.2\nidle_timeout = 0.6"),
+            "t",
+            no_env,
+        )
+        .unwrap();
+        assert_eq!(
+            (
+                site.server.limits.ping_interval,
+                site.server.limits.idle_timeout
+            ),
+            (0.2, 0.6)
+        );
+        // Both off is fine; pings without a timeout too.
+        assert!(parse(&limits("ping_interval = 0\nidle_timeout = 0"), "t", no_env).is_ok());
+        assert!(parse(&limits("idle_timeout = 0"), "t", no_env).is_ok());
+        for (l, expect) in [
+            (
+                "ping_interval = -1",
+                "server.limits.ping_interval: must be in [0, 3600] s (0 turns it off), got -1",
+            ),
+            (
+                "idle_timeout = inf",
+                "server.limits.idle_timeout: must be in [0, 86400] s (0 turns it off), got inf",
+            ),
+            (
+                "ping_interval = 0",
+                "server.limits.idle_timeout: is 30 s (the default) but server.limits.ping_interval is 0: without pings a consumer that only listens says nothing and would be closed; set a ping_interval or idle_timeout = 0",
+            ),
+            (
+                "ping_interval = 20",
+                "server.limits.idle_timeout: must be at least twice server.limits.ping_interval (2 × 20 s = 40 s) so that a live peer's pong arrives in time, got 30 s (the default)",
+            ),
+            (
+                "ping_interval = 1\nidle_timeout = 1.5",
+                "server.limits.idle_timeout: must be at least twice server.limits.ping_interval (2 × 1 s = 2 s) so that a live peer's pong arrives in time, got 1.5 s",
+            ),
+        ] {
+            let got = problems(&limits(l));
+            assert_eq!(got, vec![expect.to_string()], "{l}");
+        }
     }
 
     #[test]

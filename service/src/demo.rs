@@ -1,5 +1,6 @@
 //! `plotweave demo`: the embedded "Kestrel Bay" site fed in real time by the core's
-//! `Simulator`, through exactly the path ingest uses ([`AppState::submit`]).
+//! `Simulator`, through exactly the path ingest uses ([`AppState::submit`]), and counted in the
+//! same ingest metrics (`batches_received`, `batches_acked`, `detections`, rejections).
 //!
 //! The vessels are invented: a ferry on a racetrack across the harbour mouth, a pilot boat on
 //! a square patrol in front of the camera, a trawler working slowly back and forth, and a yacht
@@ -143,6 +144,12 @@ pub fn spawn_feeder(state: &AppState) -> Result<(), Error> {
                 () = tokio::time::sleep_until(due.into()) => {}
             }
             let (sensor, seq) = (scan.sensor, scan.tag);
+            // Counted like a batch that arrived over ingest (`handle_batch` counts there).
+            state2
+                .metrics()
+                .batches_received
+                .get_or_create(&crate::metrics::sensor(state2.label(Some(sensor))))
+                .inc();
             if let Err(r) = state2.submit(scan, Instant::now()).await {
                 state2.count_rejection(&r);
                 tracing::warn!(sensor, seq, code = %r.code, message = %r.message, "demo scan refused");

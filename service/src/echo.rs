@@ -29,6 +29,8 @@ use filter_core::tracker::{Measurement, Scan, SensorConfig, SensorKind};
 use futures_util::{Sink, SinkExt, Stream, StreamExt};
 use tokio::sync::broadcast::error::RecvError;
 
+use crate::keepalive::{Due, Keepalive, give_up};
+use crate::metrics::CloseReason;
 use crate::server::AppState;
 use crate::wire;
 
@@ -110,20 +112,21 @@ pub(crate) async fn detections(
     headers: HeaderMap,
     ws: WebSocketUpgrade,
 ) -> Response {
-    if let Err(r) = crate::http::require_read(&state, &headers) {
+    if let Err(r) = crate::http::require_read(&state, &headers, "detections") {
         return r.into_response();
     }
     crate::http::consumer_upgrade(state, peer, ws, "detections", |state, socket| async move {
         let (sink, stream) = socket.split();
-        echo_session(state, sink, stream).await;
+        echo_session(state, sink, stream).await
     })
 }
 
 /// One echo listener: forward echo messages until the client leaves, the service shuts down
-/// or the engine has stopped.
+/// or the engine has stopped; Ping the peer and close it when it falls silent
+/// ([`crate::keepalive`]). Returns why it ended.
 ///
 /// Written against `Sink`/`Stream` so that it runs on any message transport.
-pub(crate) async fn echo_session<S, R>(state: AppState, mut sink: S, mut stream: R)
+pub(crate) async fn echo_session<S, R>(state: AppState, mut sink: S, mut stream: R) -> CloseReason
 where
     S: Sink<Message> + Unpin,
     R: Stream<Item = Result<Message, axum::Error>> + Unpin,
@@ -136,25 +139,37 @@ where
     };
     tokio::pin!(engine_done);
     let cancel = state.cancel_token();
+    let mut alive = Keepalive::new(&state.0.site.server.limits);
     loop {
         tokio::select! {
             biased;
+            // The peer first, so a waiting Pong is seen before the idle deadline is judged.
+            msg = stream.next() => match msg {
+                None | Some(Err(_)) | Some(Ok(Message::Close(_))) => return CloseReason::Peer,
+                Some(Ok(_)) => alive.heard(), // listeners have nothing to say but Pongs
+            },
+            due = alive.due() => {
+                let why = match due {
+                    Due::Ping => match alive.ping(&mut sink).await {
+                        Ok(()) => continue,
+                        Err(why) => why,
+                    },
+                    Due::Idle => CloseReason::IdleTimeout,
+                };
+                return give_up(&mut sink, why).await;
+            }
             r = rx.recv() => {
                 let m = match r {
                     Ok(text) => Message::Text(text),
                     Err(RecvError::Lagged(n)) => Message::Text(Utf8Bytes::from(wire::skipped_json(n))),
                     Err(RecvError::Closed) => break,
                 };
-                if sink.send(m).await.is_err() {
-                    return;
+                if let Err(why) = alive.send(&mut sink, m).await {
+                    return give_up(&mut sink, why).await;
                 }
             }
             () = &mut engine_done => break,
             () = cancel.cancelled() => break,
-            msg = stream.next() => match msg {
-                None | Some(Err(_)) | Some(Ok(Message::Close(_))) => return,
-                Some(Ok(_)) => {} // listeners have nothing to say
-            },
         }
     }
     // The echo is a display aid: on shutdown it just says goodbye (no draining is promised).
@@ -164,6 +179,7 @@ where
             reason: Utf8Bytes::from_static("service shutting down"),
         })))
         .await;
+    CloseReason::Shutdown
 }
 
 #[cfg(test)]

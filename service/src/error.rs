@@ -212,6 +212,17 @@ pub enum Error {
     /// The engine thread has stopped, so the request could not be served.
     #[error("the tracking engine has stopped")]
     EngineStopped,
+    /// A snapshot file cannot be used to restore the picture.
+    #[error(
+        "snapshot {}: {message}; move the file away to start with an empty picture",
+        path.display()
+    )]
+    Snapshot {
+        /// The snapshot file.
+        path: std::path::PathBuf,
+        /// What is wrong with it.
+        message: String,
+    },
 }
 
 fn render_problems(source_name: &str, problems: &[Problem]) -> String {

@@ -22,7 +22,11 @@
 //! frame, m) keeps tracks whose position is inside.
 //!
 //! Every refusal is a JSON body `{"error": {"seq": null, "code": "...", "message": "..."}}`
-//! with a status matching the code.
+//! with a status matching the code. Authorisation answers `401 unauthorized` when no valid
+//! token is presented (none, a malformed header, a token that is no one's) and `403
+//! forbidden` for a valid token of another role (a sensor's token on a read path, the read
+//! token on admin or ingest); every refusal is counted in
+//! `plotweave_auth_refusals_total{endpoint, reason}` ([`AuthReason`]).
 
 use std::net::SocketAddr;
 
@@ -41,8 +45,9 @@ use tokio::sync::oneshot;
 use tracing::Instrument;
 
 use crate::error::{Code, Rejection};
+use crate::metrics::{AuthReason, CloseReason};
 use crate::pipeline::Input;
-use crate::server::{AppState, Principal, frames_session, ingest_session, token_matches};
+use crate::server::{AppState, Principal, Role, frames_session, ingest_session, role_of};
 use crate::wire::{self, TrackFilter};
 
 /// The router of the whole HTTP surface.
@@ -91,89 +96,127 @@ fn bearer(headers: &HeaderMap) -> Result<Option<&str>, Rejection> {
     Ok(Some(token))
 }
 
-pub(crate) fn require_read(state: &AppState, headers: &HeaderMap) -> Result<(), Rejection> {
-    let server = &state.site().server;
-    let Some(read) = &server.read_token else {
+/// An authorisation refusal: why (the metric's `reason`) and the answer.
+type Refusal = (AuthReason, Rejection);
+
+/// Count refusal `r` on `endpoint` (one of [`crate::metrics::AUTH_ENDPOINTS`]) and return its
+/// answer. The log line never carries the token, only the reason.
+fn refused(state: &AppState, endpoint: &'static str, (reason, r): Refusal) -> Rejection {
+    state.metrics().count_auth_refusal(endpoint, reason);
+    tracing::debug!(
+        endpoint,
+        reason = reason.as_str(),
+        code = %r.code,
+        "authorisation refused"
+    );
+    r
+}
+
+fn malformed(r: Rejection) -> Refusal {
+    (AuthReason::Malformed, r)
+}
+
+fn unauthorized(reason: AuthReason, message: &'static str) -> Refusal {
+    (reason, Rejection::new(Code::Unauthorized, None, message))
+}
+
+fn forbidden(message: &'static str) -> Refusal {
+    (
+        AuthReason::WrongRole,
+        Rejection::new(Code::Forbidden, None, message),
+    )
+}
+
+/// Check the read token (or the admin token) for `endpoint`; open when no read token is set.
+pub(crate) fn require_read(
+    state: &AppState,
+    headers: &HeaderMap,
+    endpoint: &'static str,
+) -> Result<(), Rejection> {
+    let site = state.site();
+    if site.server.read_token.is_none() {
         return Ok(());
-    };
-    // Browsers cannot set headers on a WebSocket: they offer the token as a subprotocol.
-    let offered = crate::page::protocol_token(headers)?;
-    let token = bearer(headers)?.or(offered.as_deref()).ok_or_else(|| {
-        Rejection::new(
-            Code::Unauthorized,
-            None,
-            "this path requires the read token: Authorization: Bearer TOKEN",
-        )
-    })?;
-    let admin_ok = server
-        .admin_token
-        .as_ref()
-        .is_some_and(|a| token_matches(token, a));
-    // Both comparisons always run: timing does not tell which token was close.
-    if token_matches(token, read) | admin_ok {
-        Ok(())
-    } else {
-        Err(Rejection::new(
-            Code::Unauthorized,
-            None,
-            "the bearer token is not the read token",
-        ))
     }
+    let check = || -> Result<(), Refusal> {
+        // Browsers cannot set headers on a WebSocket: they offer the token as a subprotocol.
+        let offered = crate::page::protocol_token(headers).map_err(malformed)?;
+        let token = bearer(headers)
+            .map_err(malformed)?
+            .or(offered.as_deref())
+            .ok_or_else(|| {
+                unauthorized(
+                    AuthReason::MissingToken,
+                    "this path requires the read token: Authorization: Bearer TOKEN",
+                )
+            })?;
+        match role_of(site, token) {
+            Role::Read | Role::Admin => Ok(()),
+            Role::Sensor(_) => Err(forbidden(
+                "this token is a sensor's ingest token; this path requires the read token",
+            )),
+            Role::Nobody => Err(unauthorized(
+                AuthReason::UnknownToken,
+                "the bearer token is not the read token",
+            )),
+        }
+    };
+    check().map_err(|r| refused(state, endpoint, r))
 }
 
 fn require_admin(state: &AppState, headers: &HeaderMap) -> Result<(), Rejection> {
-    let Some(admin) = &state.site().server.admin_token else {
+    let site = state.site();
+    if site.server.admin_token.is_none() {
         return Ok(());
-    };
-    match bearer(headers)? {
-        Some(t) if token_matches(t, admin) => Ok(()),
-        Some(_) => Err(Rejection::new(
-            Code::Forbidden,
-            None,
-            "the bearer token is not the admin token",
-        )),
-        None => Err(Rejection::new(
-            Code::Unauthorized,
-            None,
-            "this path requires the admin token: Authorization: Bearer TOKEN",
-        )),
     }
+    let check = || -> Result<(), Refusal> {
+        let token = bearer(headers).map_err(malformed)?.ok_or_else(|| {
+            unauthorized(
+                AuthReason::MissingToken,
+                "this path requires the admin token: Authorization: Bearer TOKEN",
+            )
+        })?;
+        match role_of(site, token) {
+            Role::Admin => Ok(()),
+            Role::Read | Role::Sensor(_) => Err(forbidden(
+                "this token does not open /v1/admin/*; it requires the admin token",
+            )),
+            Role::Nobody => Err(unauthorized(
+                AuthReason::UnknownToken,
+                "the bearer token is not the admin token",
+            )),
+        }
+    };
+    check().map_err(|r| refused(state, "admin", r))
 }
 
 /// Who an ingest request speaks for, from its bearer token.
 fn ingest_principal(state: &AppState, headers: &HeaderMap) -> Result<Principal, Rejection> {
     let site = state.site();
-    match bearer(headers)? {
-        None => {
-            if site.sensor_extra.iter().all(|e| e.token.is_some()) {
-                Err(Rejection::new(
-                    Code::Unauthorized,
-                    None,
-                    "ingest requires a sensor token: Authorization: Bearer TOKEN",
-                ))
-            } else {
-                Ok(Principal::Anonymous)
-            }
-        }
-        Some(token) => {
-            // Compare against every sensor's token, without stopping at the first match.
-            let mut found = None;
-            for (i, e) in site.sensor_extra.iter().enumerate() {
-                if let Some(t) = &e.token
-                    && token_matches(token, t)
-                {
-                    found = Some(i);
+    let check = || -> Result<Principal, Refusal> {
+        match bearer(headers).map_err(malformed)? {
+            None => {
+                if site.sensor_extra.iter().all(|e| e.token.is_some()) {
+                    Err(unauthorized(
+                        AuthReason::MissingToken,
+                        "ingest requires a sensor token: Authorization: Bearer TOKEN",
+                    ))
+                } else {
+                    Ok(Principal::Anonymous)
                 }
             }
-            found.map(Principal::Sensor).ok_or_else(|| {
-                Rejection::new(
-                    Code::Unauthorized,
-                    None,
+            Some(token) => match role_of(site, token) {
+                Role::Sensor(i) => Ok(Principal::Sensor(i)),
+                Role::Read | Role::Admin => Err(forbidden(
+                    "this token does not open /v1/ingest; a sensor sends with its own token",
+                )),
+                Role::Nobody => Err(unauthorized(
+                    AuthReason::UnknownToken,
                     "the bearer token is not the token of any configured sensor",
-                )
-            })
+                )),
+            },
         }
-    }
+    };
+    check().map_err(|r| refused(state, "ingest", r))
 }
 
 async fn ingest(
@@ -210,9 +253,11 @@ async fn ingest(
                 async move {
                     tracing::info!("connected");
                     let (sink, stream) = socket.split();
-                    ingest_session(state, principal, sink, stream).await;
+                    let metrics = state.0.metrics.clone();
+                    let why = ingest_session(state, principal, sink, stream).await;
+                    metrics.count_close("ingest", why);
                     drop(slot);
-                    tracing::info!("disconnected");
+                    tracing::info!(reason = why.as_str(), "disconnected");
                 }
                 .instrument(span),
             )
@@ -332,7 +377,7 @@ async fn frames(
     q: Result<Query<Vec<(String, String)>>, QueryRejection>,
     ws: WebSocketUpgrade,
 ) -> Response {
-    if let Err(r) = require_read(&state, &headers) {
+    if let Err(r) = require_read(&state, &headers, "frames") {
         return r.into_response();
     }
     let filter = match query(&state, q) {
@@ -343,13 +388,14 @@ async fn frames(
     let rx = state.0.hub.subscribe();
     consumer_upgrade(state, peer, ws, "frames", move |state, socket| async move {
         let (sink, stream) = socket.split();
-        frames_session(state, filter, rx, sink, stream).await;
+        frames_session(state, filter, rx, sink, stream).await
     })
 }
 
 /// Upgrade a read-only consumer (frames, detection echo): refuse during shutdown, take a
 /// connection slot (`server.limits.max_connections`), then run `session` on the socket as a
-/// tracked task inside a span named by `kind`, releasing the slot when it ends.
+/// tracked task inside a span named by `kind`, releasing the slot when it ends and counting
+/// why it ended (`plotweave_connections_closed_total{endpoint=kind}`).
 pub(crate) fn consumer_upgrade<F, Fut>(
     state: AppState,
     peer: SocketAddr,
@@ -359,7 +405,7 @@ pub(crate) fn consumer_upgrade<F, Fut>(
 ) -> Response
 where
     F: FnOnce(AppState, WebSocket) -> Fut + Send + 'static,
-    Fut: std::future::Future<Output = ()> + Send + 'static,
+    Fut: std::future::Future<Output = CloseReason> + Send + 'static,
 {
     if state.cancel_token().is_cancelled() {
         return shutting_down().into_response();
@@ -375,9 +421,11 @@ where
             tasks.track_future(
                 async move {
                     tracing::info!("subscribed");
-                    session(state, socket).await;
+                    let metrics = state.0.metrics.clone();
+                    let why = session(state, socket).await;
+                    metrics.count_close(kind, why);
                     drop(slot);
-                    tracing::info!("unsubscribed");
+                    tracing::info!(reason = why.as_str(), "unsubscribed");
                 }
                 .instrument(span),
             )
@@ -396,7 +444,7 @@ async fn tracks(
     headers: HeaderMap,
     q: Result<Query<Vec<(String, String)>>, QueryRejection>,
 ) -> Result<Response, Rejection> {
-    require_read(&state, &headers)?;
+    require_read(&state, &headers, "tracks")?;
     let filter = query(&state, q)?;
     let Some(latest) = state.0.hub.latest() else {
         return Ok(json(StatusCode::OK, EMPTY_PICTURE.to_string()));
@@ -414,7 +462,7 @@ async fn track(
     headers: HeaderMap,
     Path(id): Path<String>,
 ) -> Result<Response, Rejection> {
-    require_read(&state, &headers)?;
+    require_read(&state, &headers, "track")?;
     let id: u64 = id
         .parse()
         .map_err(|_| bad(format!("track id must be an unsigned integer, got {id:?}")))?;
@@ -444,7 +492,7 @@ async fn track(
 }
 
 async fn sensors(State(state): State<AppState>, headers: HeaderMap) -> Result<Response, Rejection> {
-    require_read(&state, &headers)?;
+    require_read(&state, &headers, "sensors")?;
     let configs = state.0.hub.sensors();
     let health = state.0.hub.health();
     let gates: Vec<(Option<u64>, Option<f64>)> = {
@@ -733,11 +781,13 @@ mod tests {
             call(&app, post(None, "{}")).await.0,
             StatusCode::UNAUTHORIZED
         );
+        // A token that is no one's is 401 (docs/wire.md, error codes); 403 is for a valid
+        // token of another role, checked end to end in tests/tests/access.rs.
         assert_eq!(
             call(&app, post(Some("wrong-token-0123456789"), "{}"))
                 .await
                 .0,
-            StatusCode::FORBIDDEN
+            StatusCode::UNAUTHORIZED
         );
         let (status, body) = call(
             &app,

@@ -44,7 +44,10 @@ pub mod config;
 pub mod demo;
 pub mod echo;
 pub mod error;
+#[doc(hidden)]
+pub mod fuzzing;
 pub mod http;
+pub mod keepalive;
 pub mod metrics;
 pub mod page;
 pub mod pipeline;
@@ -53,6 +56,7 @@ pub mod replay;
 pub mod scenario;
 pub mod score;
 pub mod server;
+pub mod snapshot;
 pub mod wire;
 
 /// Install the `tracing` subscriber: lines on standard error, text or JSON, level from

@@ -51,6 +51,109 @@ pub struct EndpointLabels {
     pub endpoint: String,
 }
 
+/// Labels `{endpoint, reason}` of refused authorisations and of closed connections.
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct EndpointReasonLabels {
+    /// The endpoint (one of [`AUTH_ENDPOINTS`] or [`WS_ENDPOINTS`]).
+    pub endpoint: String,
+    /// Why (an [`AuthReason`] or a [`CloseReason`]).
+    pub reason: String,
+}
+
+/// The `endpoint` label values of `plotweave_auth_refusals_total`: one per protected path.
+pub const AUTH_ENDPOINTS: [&str; 7] = [
+    "ingest",
+    "frames",
+    "detections",
+    "tracks",
+    "track",
+    "sensors",
+    "admin",
+];
+
+/// The `endpoint` label values of the WebSocket connection metrics.
+pub const WS_ENDPOINTS: [&str; 3] = ["ingest", "frames", "detections"];
+
+/// Why an authorisation was refused: the `reason` label of `plotweave_auth_refusals_total`.
+/// The first three are answered `401 unauthorized`, the last two `403 forbidden`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum AuthReason {
+    /// No token at all (no `Authorization` header, no bearer subprotocol).
+    MissingToken,
+    /// An `Authorization` header that is not `Bearer TOKEN`, or a bearer subprotocol that is
+    /// not hexadecimal UTF-8.
+    Malformed,
+    /// A well-formed token that is no one's (wrong, mistyped, or an old token after rotation).
+    UnknownToken,
+    /// A valid token of another role (a sensor's token on a read path, the read token on
+    /// admin or ingest).
+    WrongRole,
+    /// A sensor's token sending a batch for another sensor (counted per batch).
+    WrongSensor,
+}
+
+impl AuthReason {
+    /// Every reason, in documentation order.
+    pub const ALL: [AuthReason; 5] = [
+        AuthReason::MissingToken,
+        AuthReason::Malformed,
+        AuthReason::UnknownToken,
+        AuthReason::WrongRole,
+        AuthReason::WrongSensor,
+    ];
+
+    /// The label value.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            AuthReason::MissingToken => "missing_token",
+            AuthReason::Malformed => "malformed",
+            AuthReason::UnknownToken => "unknown_token",
+            AuthReason::WrongRole => "wrong_role",
+            AuthReason::WrongSensor => "wrong_sensor",
+        }
+    }
+}
+
+/// Why a WebSocket session ended: the `reason` label of `plotweave_connections_closed_total`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[must_use]
+pub enum CloseReason {
+    /// The peer closed, or the connection failed under us (reset, protocol error).
+    Peer,
+    /// Nothing (no pong, no message) arrived for `server.limits.idle_timeout` while the
+    /// server was listening: a half-open or hung peer.
+    IdleTimeout,
+    /// A message could not be handed to the peer within `server.limits.idle_timeout`: the
+    /// peer stopped reading.
+    SendTimeout,
+    /// A message over `server.limits.max_message_bytes` (ingest).
+    TooLarge,
+    /// The service shut down (or the engine stopped).
+    Shutdown,
+}
+
+impl CloseReason {
+    /// Every reason, in documentation order.
+    pub const ALL: [CloseReason; 5] = [
+        CloseReason::Peer,
+        CloseReason::IdleTimeout,
+        CloseReason::SendTimeout,
+        CloseReason::TooLarge,
+        CloseReason::Shutdown,
+    ];
+
+    /// The label value.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            CloseReason::Peer => "peer",
+            CloseReason::IdleTimeout => "idle_timeout",
+            CloseReason::SendTimeout => "send_timeout",
+            CloseReason::TooLarge => "too_large",
+            CloseReason::Shutdown => "shutdown",
+        }
+    }
+}
+
 /// Labels of `plotweave_build_info`.
 #[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
 pub struct BuildLabels {
@@ -59,6 +162,93 @@ pub struct BuildLabels {
 }
 
 type FloatGauge = Gauge<f64, AtomicU64>;
+
+/// The recorder's metrics (`plotweave_recording_*`, see `docs/metrics.md`), cloned into the
+/// recording thread ([`crate::record::Recorder`]). They stay at 0 while recording is off.
+#[derive(Debug, Clone)]
+pub struct RecordingMetrics {
+    /// Batches (lines) written to recording files.
+    pub batches: Counter,
+    /// Bytes written to recording files (each line with its newline).
+    pub bytes: Counter,
+    /// Successful `fsync(2)`/`fdatasync(2)` calls on recording files.
+    pub fsyncs: Counter,
+    /// Failed writes, rotations and syncs (each failed writer pass counts once; its batches
+    /// are refused `internal`, not acknowledged).
+    pub write_errors: Counter,
+    /// Seconds of one writer pass: writing the lines queued since the last pass and making
+    /// them count per the sync policy; this is what an acknowledgement waits for.
+    pub commit_seconds: Histogram,
+    /// Lines handed to the recording thread and not yet written.
+    pub queue_depth: Gauge,
+}
+
+impl RecordingMetrics {
+    /// Fresh, unregistered metrics (registered by [`Metrics::new`]).
+    pub fn new() -> Self {
+        RecordingMetrics {
+            batches: Counter::default(),
+            bytes: Counter::default(),
+            fsyncs: Counter::default(),
+            write_errors: Counter::default(),
+            // 10 µs, 20 µs, ... 1.3 s: a buffered write is microseconds, an fsync milliseconds.
+            commit_seconds: Histogram::new(exponential_buckets(0.000_01, 2.0, 18)),
+            queue_depth: Gauge::default(),
+        }
+    }
+}
+
+impl Default for RecordingMetrics {
+    fn default() -> Self {
+        Self::new()
+    }
+}
+
+/// The snapshot writer's metrics (`plotweave_snapshot*`, see `docs/metrics.md`), cloned into
+/// the engine and writer threads ([`crate::snapshot::Snapshotter`]). They stay at 0 while
+/// snapshots are off.
+#[derive(Debug, Clone)]
+pub struct SnapshotMetrics {
+    /// Snapshots taken by the engine (handed to the writer or skipped).
+    pub taken: Counter,
+    /// Snapshots written and renamed into place.
+    pub written: Counter,
+    /// Snapshots that could not be written (the previous file stays).
+    pub failed: Counter,
+    /// Snapshots dropped because the writer was still busy with the previous one.
+    pub skipped: Counter,
+    /// Size of the last snapshot written, bytes.
+    pub bytes: Gauge,
+    /// UNIX time of the last snapshot written, s.
+    pub last_success: Gauge<f64, AtomicU64>,
+    /// Seconds to encode, write and sync one snapshot.
+    pub seconds: Histogram,
+    /// Batches re-applied from the recording at the last start.
+    pub restored_batches: Gauge,
+}
+
+impl SnapshotMetrics {
+    /// Fresh, unregistered metrics (registered by [`Metrics::new`]).
+    pub fn new() -> Self {
+        SnapshotMetrics {
+            taken: Counter::default(),
+            written: Counter::default(),
+            failed: Counter::default(),
+            skipped: Counter::default(),
+            bytes: Gauge::default(),
+            last_success: Gauge::default(),
+            // 100 µs, 200 µs, ... 6.5 s
+            seconds: Histogram::new(exponential_buckets(0.000_1, 2.0, 17)),
+            restored_batches: Gauge::default(),
+        }
+    }
+}
+
+impl Default for SnapshotMetrics {
+    fn default() -> Self {
+        Self::new()
+    }
+}
 
 fn cluster_histogram() -> Histogram {
     // 1, 2, 4, ... 512 tracks
@@ -121,10 +311,18 @@ pub struct Metrics {
     pub connections: Family<EndpointLabels, Gauge>,
     /// WebSocket upgrades refused because `max_connections` was reached.
     pub connections_refused: Counter,
+    /// WebSocket sessions ended, per endpoint and [`CloseReason`].
+    pub connections_closed: Family<EndpointReasonLabels, Counter>,
+    /// Requests and batches refused by authorisation, per endpoint and [`AuthReason`].
+    pub auth_refusals: Family<EndpointReasonLabels, Counter>,
     /// Runtime sensor parameter changes applied, per sensor.
     pub sensor_param_changes: Family<SensorLabels, Counter>,
     /// Always 1; the labels carry the build's version.
     pub build_info: Family<BuildLabels, Gauge>,
+    /// The recorder's metrics.
+    pub recording: RecordingMetrics,
+    /// The snapshot writer's metrics.
+    pub snapshot: SnapshotMetrics,
 }
 
 impl Metrics {
@@ -253,12 +451,100 @@ impl Metrics {
                 "WebSocket upgrades refused at max_connections",
                 Counter::default()
             ),
+            connections_closed: reg!(
+                "connections_closed",
+                "WebSocket sessions ended, by endpoint and reason",
+                Family::default()
+            ),
+            auth_refusals: reg!(
+                "auth_refusals",
+                "Requests and batches refused by authorisation, by endpoint and reason",
+                Family::default()
+            ),
             sensor_param_changes: reg!(
                 "sensor_param_changes",
                 "Runtime sensor parameter changes applied",
                 Family::default()
             ),
             build_info: reg!("build", "Build information (value 1)", Family::default()),
+            recording: {
+                let rm = RecordingMetrics::new();
+                r.register(
+                    "recording_batches",
+                    "Batches written to recording files",
+                    rm.batches.clone(),
+                );
+                r.register(
+                    "recording_bytes",
+                    "Bytes written to recording files",
+                    rm.bytes.clone(),
+                );
+                r.register(
+                    "recording_fsyncs",
+                    "fsync calls on recording files",
+                    rm.fsyncs.clone(),
+                );
+                r.register(
+                    "recording_write_errors",
+                    "Failed recording writes, rotations and syncs",
+                    rm.write_errors.clone(),
+                );
+                r.register(
+                    "recording_commit_seconds",
+                    "Time of one recording writer pass (write and sync per policy)",
+                    rm.commit_seconds.clone(),
+                );
+                r.register(
+                    "recording_queue_depth",
+                    "Lines waiting for the recording thread",
+                    rm.queue_depth.clone(),
+                );
+                rm
+            },
+            snapshot: {
+                let sm = SnapshotMetrics::new();
+                r.register(
+                    "snapshots_taken",
+                    "Tracker snapshots taken by the engine",
+                    sm.taken.clone(),
+                );
+                r.register(
+                    "snapshots_written",
+                    "Tracker snapshots written to disk",
+                    sm.written.clone(),
+                );
+                r.register(
+                    "snapshot_write_errors",
+                    "Tracker snapshots that could not be written",
+                    sm.failed.clone(),
+                );
+                r.register(
+                    "snapshots_skipped",
+                    "Tracker snapshots dropped because the writer was busy",
+                    sm.skipped.clone(),
+                );
+                r.register(
+                    "snapshot_bytes",
+                    "Size of the last snapshot written",
+                    sm.bytes.clone(),
+                );
+                r.register(
+                    "snapshot_last_success_timestamp_seconds",
+                    "UNIX time of the last snapshot written",
+                    sm.last_success.clone(),
+                );
+                r.register(
+                    "snapshot_write_seconds",
+                    "Time to encode, write and sync one snapshot",
+                    sm.seconds.clone(),
+                );
+                r.register(
+                    "snapshot_restored_batches",
+                    "Batches re-applied from the recording at start",
+                    sm.restored_batches.clone(),
+                );
+                sm
+            },
             registry: Registry::default(),
         };
         m.registry = r;
@@ -272,10 +558,26 @@ impl Metrics {
                 status: status.into(),
             });
         }
-        for endpoint in ["ingest", "frames", "detections"] {
+        for endpoint in WS_ENDPOINTS {
             let _ = m.connections.get_or_create(&EndpointLabels {
                 endpoint: endpoint.into(),
             });
+            for reason in CloseReason::ALL {
+                let _ = m
+                    .connections_closed
+                    .get_or_create(&endpoint_reason(endpoint, reason.as_str()));
+            }
+        }
+        // Every combination that can happen exists from start-up, so `increase()` sees the
+        // first refusal; `wrong_sensor` is a per-batch refusal and exists on ingest only.
+        for endpoint in AUTH_ENDPOINTS {
+            for reason in AuthReason::ALL {
+                if reason != AuthReason::WrongSensor || endpoint == "ingest" {
+                    let _ = m
+                        .auth_refusals
+                        .get_or_create(&endpoint_reason(endpoint, reason.as_str()));
+                }
+            }
         }
         for id in sensor_ids {
             let l = sensor(id);
@@ -330,6 +632,29 @@ impl Metrics {
             }
             _ => {}
         }
+    }
+}
+
+impl Metrics {
+    /// Count one refused authorisation on `endpoint` (one of [`AUTH_ENDPOINTS`]).
+    pub fn count_auth_refusal(&self, endpoint: &str, reason: AuthReason) {
+        self.auth_refusals
+            .get_or_create(&endpoint_reason(endpoint, reason.as_str()))
+            .inc();
+    }
+
+    /// Count one ended WebSocket session on `endpoint` (one of [`WS_ENDPOINTS`]).
+    pub fn count_close(&self, endpoint: &str, reason: CloseReason) {
+        self.connections_closed
+            .get_or_create(&endpoint_reason(endpoint, reason.as_str()))
+            .inc();
+    }
+}
+
+fn endpoint_reason(endpoint: &str, reason: &str) -> EndpointReasonLabels {
+    EndpointReasonLabels {
+        endpoint: endpoint.to_string(),
+        reason: reason.to_string(),
     }
 }
 

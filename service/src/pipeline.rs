@@ -21,8 +21,11 @@
 //! 4. The latest frame, recent per-track history and sensor health are kept in the [`Hub`] for
 //!    the HTTP endpoints.
 //!
+//! With `[server.snapshot]` the engine thread also hands a snapshot of the tracker to
+//! [`crate::snapshot::Snapshotter`] every `interval` (see that module for the restore).
+//!
 //! When every sender of the queue is gone (shutdown), the engine flushes the tracker's reorder
-//! buffer, publishes those frames, marks the hub done and ends.
+//! buffer, publishes those frames, takes a last snapshot, marks the hub done and ends.
 
 use std::collections::{BTreeMap, VecDeque};
 use std::io::{BufRead, Write};
@@ -92,6 +95,16 @@ impl Admission {
     /// The state of sensor `index`.
     pub fn gate(&self, index: usize) -> &SensorGate {
         &self.gates[index]
+    }
+
+    /// Continue after a restart: sensor `index` last had batch `seq` at `time` accepted
+    /// (restored from a snapshot). The next batch must have a greater `seq`; the site's newest
+    /// accepted time becomes at least `time`.
+    pub fn resume(&mut self, index: usize, seq: u64, time: f64) {
+        let gate = &mut self.gates[index];
+        gate.last_seq = Some(gate.last_seq.map_or(seq, |s| s.max(seq)));
+        gate.last_time = Some(gate.last_time.map_or(time, |t| t.max(time)));
+        self.latest_time = Some(self.latest_time.map_or(time, |t| t.max(time)));
     }
 
     /// Check `scan` (its `tag` is the batch's seq) and, if accepted, record it.
@@ -238,6 +251,20 @@ impl Engine {
     /// Sensor ids in index order.
     pub fn sensor_ids(&self) -> &[String] {
         &self.ids
+    }
+
+    /// The tracker (for snapshots).
+    pub fn tracker(&self) -> &Tracker {
+        &self.tracker
+    }
+
+    /// Replace the tracker by one restored from a snapshot (same sensors, in the same order),
+    /// and publish its sensors' health.
+    pub fn restore_tracker(&mut self, tracker: Tracker) {
+        self.tracker = tracker;
+        for i in 0..self.ids.len() {
+            self.publish_health(i);
+        }
     }
 
     /// The sensors' current parameters.
@@ -495,7 +522,7 @@ impl Hub {
         lock(&self.sensors).clone()
     }
 
-    fn publish(&self, picture: Picture, json: &str) {
+    pub(crate) fn publish(&self, picture: Picture, json: &str) {
         {
             let mut history = lock(&self.history);
             for id in &picture.ended {
@@ -545,11 +572,13 @@ fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
 }
 
 /// Start the engine thread: it applies inputs until every sender of `rx` is dropped, then
-/// flushes, publishes the last frames and marks the hub done.
+/// flushes, publishes the last frames and marks the hub done. With a `snapshotter` it hands
+/// it each applied batch and a snapshot when one is due, and a last one after the flush.
 pub fn spawn_engine(
     mut engine: Engine,
     mut rx: mpsc::Receiver<Input>,
     hub: Arc<Hub>,
+    mut snapshotter: Option<crate::snapshot::Snapshotter>,
 ) -> std::io::Result<std::thread::JoinHandle<()>> {
     std::thread::Builder::new()
         .name("plotweave-engine".into())
@@ -568,9 +597,13 @@ pub fn spawn_engine(
                 metrics.queue_depth.set(rx.len() as i64);
                 match input {
                     Input::Scan { scan, received } => {
-                        let (sensor, seq) = (scan.sensor, scan.tag);
+                        let (sensor, seq, time) = (scan.sensor, scan.tag, scan.time);
                         hub.echo(&scan, engine.sensors());
-                        if let Err(e) = engine.submit(scan, Some(received), &mut publish) {
+                        let result = engine.submit(scan, Some(received), &mut publish);
+                        if let (Ok(()), Some(s)) = (&result, &mut snapshotter) {
+                            s.applied(sensor, seq, time);
+                        }
+                        if let Err(e) = result {
                             // Admission mirrors the tracker's rules, so this means the two
                             // disagree: count it and say so; the batch was already acked.
                             let id = &engine.ids[sensor];
@@ -591,6 +624,9 @@ pub fn spawn_engine(
                     } => {
                         let result = engine.update_sensor(sensor, &params);
                         if result.is_ok() {
+                            if let Some(s) = &mut snapshotter {
+                                s.changed();
+                            }
                             *lock(&hub.sensors) = engine.sensors().to_vec();
                             let h = engine.health(sensor);
                             lock(&hub.health)[sensor] = h;
@@ -599,8 +635,14 @@ pub fn spawn_engine(
                         let _ = reply.send(result);
                     }
                 }
+                if let Some(s) = &mut snapshotter {
+                    s.tick(engine.tracker());
+                }
             }
             engine.flush(&mut publish);
+            if let Some(s) = snapshotter.take() {
+                s.finish(engine.tracker());
+            }
             metrics.queue_depth.set(0);
             tracing::info!("engine flushed and stopped");
         })

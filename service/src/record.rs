@@ -7,7 +7,9 @@
 //! admitted (the same order the engine sees), so a file replays into the same frames. Each
 //! batch's acknowledgement waits for its line per the [`SyncPolicy`]; the thread writes
 //! whatever has queued up since its last pass in one go and syncs once for all of it (group
-//! commit), so sensors do not wait behind each other's fsync.
+//! commit), so sensors do not wait behind each other's fsync. The thread counts what it does
+//! in [`RecordingMetrics`] (`plotweave_recording_*`: lines, bytes, fsyncs, errors, the time of
+//! each pass, and the lines waiting for it).
 //!
 //! Files are named `rec-YYYYMMDDTHHMMSS.mmmZ-NNNN.jsonl` (UTC time of opening, then a counter),
 //! so `ls` order is time order; a new file starts when the current one would exceed
@@ -28,6 +30,7 @@ use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 use tokio::sync::oneshot;
 
 use crate::error::Error;
+use crate::metrics::RecordingMetrics;
 
 /// When a recorded line counts as written, i.e. when the batch may be acknowledged.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -74,11 +77,27 @@ enum Job {
 pub struct Recorder {
     tx: std_mpsc::SyncSender<Job>,
     thread: Mutex<Option<std::thread::JoinHandle<()>>>,
+    metrics: RecordingMetrics,
+    current: std::sync::Arc<Mutex<PathBuf>>,
 }
 
 impl std::fmt::Debug for Recorder {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         f.write_str("Recorder")
+    }
+}
+
+/// Reads the recording's current file from any thread (see [`Recorder::current_file`]).
+#[derive(Debug, Clone)]
+pub struct CurrentFile(std::sync::Arc<Mutex<PathBuf>>);
+
+impl CurrentFile {
+    /// The file being written now.
+    pub fn get(&self) -> PathBuf {
+        self.0
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner)
+            .clone()
     }
 }
 
@@ -91,6 +110,18 @@ impl Recorder {
     /// # Errors
     /// [`Error::Io`] naming the directory or file if it cannot be created.
     pub fn start(config: RecordingConfig) -> Result<Recorder, Error> {
+        Self::start_metered(config, RecordingMetrics::new())
+    }
+
+    /// [`Recorder::start`], counting into `metrics` (the service's registered
+    /// `plotweave_recording_*`).
+    ///
+    /// # Errors
+    /// As [`Recorder::start`].
+    pub fn start_metered(
+        config: RecordingConfig,
+        metrics: RecordingMetrics,
+    ) -> Result<Recorder, Error> {
         std::fs::create_dir_all(&config.directory).map_err(|e| {
             Error::io(
                 format!(
@@ -100,7 +131,8 @@ impl Recorder {
                 e,
             )
         })?;
-        let mut files = Files::open(config)?;
+        let mut files = Files::open(config, metrics.clone())?;
+        let current = files.current.clone();
         let (tx, rx) = std_mpsc::sync_channel(RECORDER_QUEUE);
         let thread = std::thread::Builder::new()
             .name("plotweave-recorder".into())
@@ -109,7 +141,23 @@ impl Recorder {
         Ok(Recorder {
             tx,
             thread: Mutex::new(Some(thread)),
+            metrics,
+            current,
         })
+    }
+
+    /// The file being written now (it changes when the recording rotates). Every line queued
+    /// from now on goes to this file or a later one (in name order).
+    pub fn current_file(&self) -> PathBuf {
+        self.current
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner)
+            .clone()
+    }
+
+    /// A handle that reads [`Recorder::current_file`] from another thread.
+    pub fn current_file_handle(&self) -> CurrentFile {
+        CurrentFile(self.current.clone())
     }
 
     /// Queue `batch_text` (one batch as received; re-serialised on one line with `"recv"`).
@@ -117,16 +165,20 @@ impl Recorder {
     pub fn append(&self, batch_text: &str, recv: f64) -> Written {
         let (done, rx) = oneshot::channel();
         let text = record_line(batch_text, recv);
+        // Counted before the send: the writer decrements once it has taken the line.
+        self.metrics.queue_depth.inc();
         match self.tx.try_send(Job::Line { text, done }) {
             Ok(()) => {}
             Err(std_mpsc::TrySendError::Full(job)) => {
                 // Rare: the disk is slower than the sensors. Wait on this thread (a short,
                 // bounded wait; the writer drains the queue in one pass).
                 if let Err(std_mpsc::SendError(Job::Line { done, .. })) = self.tx.send(job) {
+                    self.metrics.queue_depth.dec();
                     let _ = done.send(Err("the recorder has stopped".into()));
                 }
             }
             Err(std_mpsc::TrySendError::Disconnected(Job::Line { done, .. })) => {
+                self.metrics.queue_depth.dec();
                 let _ = done.send(Err("the recorder has stopped".into()));
             }
             Err(_) => {}
@@ -204,20 +256,25 @@ struct Files {
     last_sync: Instant,
     dirty: bool,
     counter: u32,
+    metrics: RecordingMetrics,
+    /// `path`, shared with [`Recorder::current_file`].
+    current: std::sync::Arc<Mutex<PathBuf>>,
 }
 
 impl Files {
-    fn open(config: RecordingConfig) -> Result<Files, Error> {
+    fn open(config: RecordingConfig, metrics: RecordingMetrics) -> Result<Files, Error> {
         let (out, path, counter) = new_file(&config.directory, 0, config.sync)?;
         Ok(Files {
             config,
             out,
+            current: std::sync::Arc::new(Mutex::new(path.clone())),
             path,
             bytes: 0,
             opened: Instant::now(),
             last_sync: Instant::now(),
             dirty: false,
             counter,
+            metrics,
         })
     }
 
@@ -248,6 +305,7 @@ impl Files {
             }
             let mut waiting = Vec::with_capacity(pending.len());
             let mut result = Ok(());
+            let pass = Instant::now();
             for job in pending.drain(..) {
                 match job {
                     Job::Stop => stop = true,
@@ -262,6 +320,14 @@ impl Files {
             if result.is_ok() && !waiting.is_empty() {
                 result = self.commit();
             }
+            if !waiting.is_empty() {
+                let m = &self.metrics;
+                m.queue_depth.dec_by(waiting.len() as i64);
+                m.commit_seconds.observe(pass.elapsed().as_secs_f64());
+                if result.is_err() {
+                    m.write_errors.inc();
+                }
+            }
             let reply = result.map_err(|e| {
                 tracing::error!(file = %self.path.display(), error = %e, "recording failed");
                 format!("cannot write the recording {}: {e}", self.path.display())
@@ -274,7 +340,9 @@ impl Files {
             }
         }
         let _ = self.out.flush();
-        let _ = self.out.get_ref().sync_all();
+        if self.out.get_ref().sync_all().is_ok() {
+            self.metrics.fsyncs.inc();
+        }
         tracing::info!(file = %self.path.display(), "recording closed");
     }
 
@@ -295,6 +363,8 @@ impl Files {
         self.out.write_all(b"\n")?;
         self.bytes += len;
         self.dirty = true;
+        self.metrics.batches.inc();
+        self.metrics.bytes.inc_by(len);
         Ok(())
     }
 
@@ -314,6 +384,7 @@ impl Files {
             SyncPolicy::Fsync => {
                 self.out.flush()?;
                 self.out.get_ref().sync_data()?;
+                self.metrics.fsyncs.inc();
                 self.dirty = false;
                 Ok(())
             }
@@ -325,8 +396,14 @@ impl Files {
             .out
             .flush()
             .and_then(|()| self.out.get_ref().sync_data());
-        if let Err(e) = r {
-            tracing::error!(file = %self.path.display(), error = %e, "recording fsync failed");
+        match r {
+            Ok(()) => {
+                self.metrics.fsyncs.inc();
+            }
+            Err(e) => {
+                self.metrics.write_errors.inc();
+                tracing::error!(file = %self.path.display(), error = %e, "recording fsync failed");
+            }
         }
         self.dirty = false;
         self.last_sync = Instant::now();
@@ -336,6 +413,7 @@ impl Files {
         self.out.flush()?;
         if self.config.sync != SyncPolicy::None {
             self.out.get_ref().sync_all()?;
+            self.metrics.fsyncs.inc();
         }
         let (out, path, counter) =
             new_file(&self.config.directory, self.counter + 1, self.config.sync).map_err(|e| {
@@ -346,6 +424,10 @@ impl Files {
             })?;
         tracing::info!(from = %self.path.display(), to = %path.display(), "recording rotated");
         self.out = out;
+        *self
+            .current
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner) = path.clone();
         self.path = path;
         self.counter = counter;
         self.bytes = 0;

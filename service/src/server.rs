@@ -31,7 +31,10 @@ use tracing::Instrument;
 use crate::config::{Secret, Site};
 use crate::error::{Code, Error, Rejection};
 use crate::http::TrackQuery;
-use crate::metrics::{self, EndpointLabels, Metrics, UNKNOWN_SENSOR_LABEL};
+use crate::keepalive::{Due, Keepalive, give_up};
+use crate::metrics::{
+    self, AuthReason, CloseReason, EndpointLabels, Metrics, UNKNOWN_SENSOR_LABEL,
+};
 use crate::pipeline::{Admission, Engine, FrameMsg, Hub, Input, spawn_engine};
 use crate::wire::{self, DecodeLimits};
 
@@ -65,20 +68,48 @@ impl AppState {
     /// Build the engine of `site` and start its thread.
     pub fn new(site: Site) -> Result<Self, Error> {
         let ids = site.sensor_ids();
+        let metrics = Arc::new(Metrics::new(&ids));
+        let mut engine = Engine::new(&site, metrics.clone())?;
+        let mut admission = Admission::new(&site, true);
+        // Restore before the recorder starts: its new file sorts after every file read here.
+        let mut last_frame = None;
+        let restored =
+            crate::snapshot::restore(&site, &mut engine, &mut admission, &mut |p, j| {
+                last_frame = Some((p, j.to_string()));
+            })?;
+        metrics
+            .snapshot
+            .restored_batches
+            .set(restored.replayed as i64);
         let recorder = site
             .server
             .recording
             .clone()
-            .map(crate::record::Recorder::start)
+            .map(|c| crate::record::Recorder::start_metered(c, metrics.recording.clone()))
             .transpose()?;
-        let metrics = Arc::new(Metrics::new(&ids));
-        let engine = Engine::new(&site, metrics.clone())?;
+        let snapshotter = site
+            .server
+            .snapshot
+            .as_ref()
+            .map(|c| {
+                crate::snapshot::Snapshotter::start(
+                    &site,
+                    c,
+                    recorder.as_ref().map(|r| r.current_file_handle()),
+                    &restored,
+                    metrics.snapshot.clone(),
+                )
+            })
+            .transpose()?;
         let hub = Hub::new(&engine, site.server.limits.frame_buffer);
+        if let Some((picture, json)) = last_frame {
+            hub.publish(picture, &json);
+        }
         let (tx, rx) = mpsc::channel(site.server.limits.queue_depth.max(1));
-        let thread = spawn_engine(engine, rx, hub.clone())
+        let thread = spawn_engine(engine, rx, hub.clone(), snapshotter)
             .map_err(|e| Error::io("cannot start the engine thread", e))?;
         Ok(AppState(Arc::new(Shared {
-            admission: tokio::sync::Mutex::new(Admission::new(&site, true)),
+            admission: tokio::sync::Mutex::new(admission),
             limits: DecodeLimits {
                 max_detections: site.server.limits.max_detections,
             },
@@ -268,6 +299,44 @@ pub(crate) fn token_matches(presented: &str, configured: &Secret) -> bool {
     presented.as_bytes().ct_eq(configured.expose()).into()
 }
 
+/// Whose a presented token is: every configured token is compared (in constant time, without
+/// stopping at a match), so the timing does not tell which one came close. Tokens are unique
+/// (the configuration refuses two equal ones), so at most one matches.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Role {
+    /// Sensor `index`'s ingest token.
+    Sensor(usize),
+    /// `server.read_token`.
+    Read,
+    /// `server.admin_token`.
+    Admin,
+    /// No one's.
+    Nobody,
+}
+
+/// The [`Role`] of `token` on `site`.
+pub(crate) fn role_of(site: &Site, token: &str) -> Role {
+    let mut role = Role::Nobody;
+    for (i, e) in site.sensor_extra.iter().enumerate() {
+        if let Some(t) = &e.token
+            && token_matches(token, t)
+        {
+            role = Role::Sensor(i);
+        }
+    }
+    for (configured, r) in [
+        (&site.server.read_token, Role::Read),
+        (&site.server.admin_token, Role::Admin),
+    ] {
+        if let Some(t) = configured
+            && token_matches(token, t)
+        {
+            role = r;
+        }
+    }
+    role
+}
+
 /// Who an ingest connection speaks for.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub(crate) enum Principal {
@@ -279,11 +348,15 @@ pub(crate) enum Principal {
 
 impl Principal {
     /// Whether this principal may send batches of `sensor`.
+    /// A refusal is counted in `plotweave_auth_refusals_total{endpoint="ingest"}`.
     pub(crate) fn check(self, state: &AppState, sensor: usize, seq: u64) -> Result<(), Rejection> {
         let ids = &state.0.ids;
+        let refused = |reason| state.0.metrics.count_auth_refusal("ingest", reason);
         match self {
             Principal::Sensor(i) if i == sensor => Ok(()),
-            Principal::Sensor(i) => Err(Rejection::new(
+            Principal::Sensor(i) => Err({
+                refused(AuthReason::WrongSensor);
+                Rejection::new(
                 Code::Forbidden,
                 Some(seq),
                 format!(
@@ -291,11 +364,13 @@ impl Principal {
                     ids[sensor], ids[i]
                 ),
             )
-            .for_sensor(sensor)),
+            .for_sensor(sensor)
+            }),
             Principal::Anonymous => {
                 if state.0.site.sensor_extra[sensor].token.is_none() {
                     Ok(())
                 } else {
+                    refused(AuthReason::MissingToken);
                     Err(Rejection::new(
                         Code::Unauthorized,
                         Some(seq),
@@ -354,7 +429,8 @@ fn is_too_large(e: &axum::Error) -> bool {
     s.contains("Space limit exceeded") || s.contains("too long")
 }
 
-/// One ingest connection: read batches, reply to each with an ack or an error.
+/// One ingest connection: read batches, reply to each with an ack or an error; Ping the peer
+/// and close it when it falls silent ([`crate::keepalive`]). Returns why it ended.
 ///
 /// Written against `Sink`/`Stream` so that it runs on any message transport.
 pub(crate) async fn ingest_session<S, R>(
@@ -362,7 +438,8 @@ pub(crate) async fn ingest_session<S, R>(
     principal: Principal,
     mut sink: S,
     mut stream: R,
-) where
+) -> CloseReason
+where
     S: Sink<Message> + Unpin,
     R: Stream<Item = Result<Message, axum::Error>> + Unpin,
 {
@@ -371,14 +448,27 @@ pub(crate) async fn ingest_session<S, R>(
     // Shutdown waits for this token before it closes the engine input; it is released before
     // the close handshake so a slow peer cannot delay the engine's flush.
     let producing = state.0.producers.token();
+    let mut alive = Keepalive::new(&state.0.site.server.limits);
     loop {
         let next = tokio::select! {
             biased;
             () = cancel.cancelled() => break,
             m = stream.next() => m,
+            due = alive.due() => {
+                let why = match due {
+                    Due::Ping => match alive.ping(&mut sink).await {
+                        Ok(()) => continue,
+                        Err(why) => why,
+                    },
+                    Due::Idle => CloseReason::IdleTimeout,
+                };
+                drop(producing);
+                return give_up(&mut sink, why).await;
+            }
         };
+        alive.heard();
         let reply = match next {
-            None | Some(Ok(Message::Close(_))) => return,
+            None | Some(Ok(Message::Close(_))) => return CloseReason::Peer,
             Some(Err(e)) if is_too_large(&e) => {
                 let r = Rejection::new(
                     Code::TooLarge,
@@ -398,11 +488,11 @@ pub(crate) async fn ingest_session<S, R>(
                     "message too large",
                 )
                 .await;
-                return;
+                return CloseReason::TooLarge;
             }
             Some(Err(e)) => {
                 tracing::debug!(error = %e, "ingest connection failed");
-                return;
+                return CloseReason::Peer;
             }
             Some(Ok(Message::Text(t))) => handle_batch(&state, principal, t.as_str()).await,
             Some(Ok(Message::Binary(b))) => {
@@ -417,11 +507,17 @@ pub(crate) async fn ingest_session<S, R>(
                 state.count_rejection(&r);
                 r.to_json()
             }
-            Some(Ok(_)) => continue, // ping/pong: answered by the WebSocket layer
+            Some(Ok(_)) => continue, // ping/pong: pings are answered by the WebSocket layer
         };
-        if sink.send(text(reply)).await.is_err() {
-            return;
+        if let Err(why) = alive.send(&mut sink, text(reply)).await {
+            drop(producing);
+            return give_up(&mut sink, why).await;
         }
+        // The session did not read while it handled this message: back-pressure may have held
+        // it in `submit` for as long as the engine queue stayed full. That pause is ours, not
+        // the peer's silence, so the idle clock restarts as the session listens again (see
+        // `crate::keepalive`: pongs are not read during the pause, by design).
+        alive.heard();
     }
     drop(producing);
     close_gracefully(
@@ -431,6 +527,7 @@ pub(crate) async fn ingest_session<S, R>(
         "service shutting down",
     )
     .await;
+    CloseReason::Shutdown
 }
 
 /// Refuse a live batch stamped more than `server.limits.max_time_ahead` seconds ahead of the
@@ -506,7 +603,8 @@ async fn handle_batch(state: &AppState, principal: Principal, text: &str) -> Str
 }
 
 /// One frame subscriber: forward frames (filtered if asked) from `rx` until the client leaves
-/// or the engine has published its last frame.
+/// or the engine has published its last frame; Ping the peer and close it when it falls
+/// silent ([`crate::keepalive`]). Returns why it ended.
 ///
 /// The caller subscribes (`Hub::subscribe`) *before* it answers the upgrade, so every frame
 /// made after the client saw its connection accepted reaches it; subscribing inside the
@@ -517,7 +615,8 @@ pub(crate) async fn frames_session<S, R>(
     mut rx: tokio::sync::broadcast::Receiver<std::sync::Arc<FrameMsg>>,
     mut sink: S,
     mut stream: R,
-) where
+) -> CloseReason
+where
     S: Sink<Message> + Unpin,
     R: Stream<Item = Result<Message, axum::Error>> + Unpin,
 {
@@ -546,47 +645,62 @@ pub(crate) async fn frames_session<S, R>(
         }
     };
     use tokio::sync::broadcast::error::{RecvError, TryRecvError};
-    loop {
+    let mut alive = Keepalive::new(&state.0.site.server.limits);
+    // Sends are bounded by the idle timeout (`Keepalive::send`): a peer that stopped reading
+    // would otherwise hold this session in a send forever, past its idle deadline.
+    let sent = loop {
         tokio::select! {
             biased;
+            // The peer first: a Pong waiting in the socket must be seen before the idle
+            // deadline is judged, and a burst of frames must not starve it.
+            msg = stream.next() => match msg {
+                None | Some(Err(_)) | Some(Ok(Message::Close(_))) => return CloseReason::Peer,
+                // Consumers have nothing to say: any message (a Pong) is proof of life;
+                // their pings are answered below us.
+                Some(Ok(_)) => alive.heard(),
+            },
+            due = alive.due() => match due {
+                Due::Ping => {
+                    if let Err(why) = alive.ping(&mut sink).await {
+                        break Err(why);
+                    }
+                }
+                Due::Idle => break Err(CloseReason::IdleTimeout),
+            },
             r = rx.recv() => match r {
                 Ok(msg) => {
-                    if sink.send(render(&msg, &mut buf)).await.is_err() {
-                        return;
+                    if let Err(why) = alive.send(&mut sink, render(&msg, &mut buf)).await {
+                        break Err(why);
                     }
                 }
                 Err(RecvError::Lagged(n)) => {
                     m.frames_skipped.inc_by(n);
-                    if sink.send(text(wire::skipped_json(n))).await.is_err() {
-                        return;
+                    if let Err(why) = alive.send(&mut sink, text(wire::skipped_json(n))).await {
+                        break Err(why);
                     }
                 }
-                Err(RecvError::Closed) => break,
+                Err(RecvError::Closed) => break Ok(()),
             },
             () = &mut engine_done => {
-                loop {
-                    match rx.try_recv() {
-                        Ok(msg) => {
-                            if sink.send(render(&msg, &mut buf)).await.is_err() {
-                                return;
-                            }
-                        }
+                let drained = loop {
+                    let msg = match rx.try_recv() {
+                        Ok(msg) => render(&msg, &mut buf),
                         Err(TryRecvError::Lagged(n)) => {
                             m.frames_skipped.inc_by(n);
-                            if sink.send(text(wire::skipped_json(n))).await.is_err() {
-                                return;
-                            }
+                            text(wire::skipped_json(n))
                         }
-                        Err(_) => break,
+                        Err(_) => break Ok(()),
+                    };
+                    if let Err(why) = alive.send(&mut sink, msg).await {
+                        break Err(why);
                     }
-                }
-                break;
+                };
+                break drained;
             }
-            msg = stream.next() => match msg {
-                None | Some(Err(_)) | Some(Ok(Message::Close(_))) => return,
-                Some(Ok(_)) => {} // consumers have nothing to say; pings are answered below us
-            },
         }
+    };
+    if let Err(why) = sent {
+        return give_up(&mut sink, why).await;
     }
     close_gracefully(
         &mut sink,
@@ -595,6 +709,7 @@ pub(crate) async fn frames_session<S, R>(
         "service shutting down",
     )
     .await;
+    CloseReason::Shutdown
 }
 
 /// Refuse to serve an open (token-less) surface on a non-loopback address unless allowed.
@@ -736,7 +851,7 @@ mod tests {
             }
         });
         let stream = futures_util::stream::iter(input.into_iter().map(Ok));
-        ingest_session(state.clone(), principal, Box::pin(sink), stream).await;
+        let _ = ingest_session(state.clone(), principal, Box::pin(sink), stream).await;
         out.lock().unwrap().clone()
     }
 
@@ -786,6 +901,70 @@ mod tests {
         let r = replies(&session(&state, Principal::Anonymous, msgs).await);
         assert_eq!(r[0], serde_json::json!({"ack": 1}));
         assert_eq!(r[1]["error"]["code"], "unauthorized");
+    }
+
+    /// Regression guard for the keepalive: an ingest session held in `submit` (as
+    /// back-pressure holds it while the engine queue is full; here the admission lock is held,
+    /// which stops it at the same await) for longer than `idle_timeout` is not closed as dead
+    /// when it resumes: it acknowledges the batch and gives the peer a full `idle_timeout`
+    /// from then on. Virtual time (`start_paused`), so the durations are exact.
+    #[tokio::test(start_paused = true)]
+    async fn an_ingest_session_paused_by_back_pressure_is_not_mistaken_for_dead() {
+        use tokio::time::{Duration, Instant};
+        let mut site = Site::demo(|_| None).unwrap();
+        site.server.limits.ping_interval = 1.0;
+        site.server.limits.idle_timeout = 3.0;
+        let state = AppState::new(site).unwrap();
+        let (to_session, from_test) = mpsc::unbounded_channel::<Message>();
+        let stream = Box::pin(futures_util::stream::unfold(
+            from_test,
+            |mut rx| async move { rx.recv().await.map(|m| (Ok::<_, axum::Error>(m), rx)) },
+        ));
+        let (to_test, mut from_session) = mpsc::unbounded_channel::<(Instant, Message)>();
+        let sink = Box::pin(futures_util::sink::unfold(
+            to_test,
+            |tx, m: Message| async move {
+                let _ = tx.send((Instant::now(), m));
+                Ok::<_, std::convert::Infallible>(tx)
+            },
+        ));
+        let paused = state.0.admission.lock().await;
+        let session = tokio::spawn(ingest_session(
+            state.clone(),
+            Principal::Anonymous,
+            sink,
+            stream,
+        ));
+        to_session
+            .send(text(
+                r#"{"sensor":"north-mole-camera","seq":1,"time":100.0,"detections":[]}"#.into(),
+            ))
+            .unwrap();
+        // Paused for ten seconds, more than three idle timeouts; the peer says nothing more.
+        tokio::time::sleep(Duration::from_secs(10)).await;
+        assert!(
+            from_session.try_recv().is_err(),
+            "nothing is sent while paused"
+        );
+        let resumed = Instant::now();
+        drop(paused);
+        let (_, first) = from_session.recv().await.unwrap();
+        assert_eq!(first, text(r#"{"ack":1}"#.into()));
+        let mut pings = 0;
+        let closed_at = loop {
+            match from_session.recv().await.unwrap() {
+                (_, Message::Ping(_)) => pings += 1,
+                (at, Message::Close(Some(f))) => {
+                    assert_eq!(f.code, close_code::AWAY);
+                    break at;
+                }
+                (_, other) => panic!("unexpected {other:?}"),
+            }
+        };
+        assert_eq!(closed_at - resumed, Duration::from_secs(3));
+        assert!(pings >= 2, "{pings}");
+        assert_eq!(session.await.unwrap(), CloseReason::IdleTimeout);
+        drop(to_session);
     }
 
     #[test]

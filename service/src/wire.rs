@@ -97,7 +97,7 @@ fn peek_identity(text: &str) -> (Option<u64>, Option<String>) {
 ///
 /// Rules, each with its [`Code`]: valid JSON (`malformed_json`); the fields `sensor` (string),
 /// `seq` (unsigned integer), `time` (number), `detections` (array) present with those types
-/// (`schema`); every number finite (`non_finite`); `sensor` configured (`unknown_sensor`);
+/// (`schema`); every number finite, in extension fields too (`non_finite`); `sensor` configured (`unknown_sensor`);
 /// `time` ≥ 0 (`out_of_range`); at most `limits.max_detections` detections
 /// (`too_many_detections`); a cartesian sensor's detections carry `x` and `y` and no polar
 /// fields, a polar sensor's carry `range` and `bearing` and no `x`/`y` (`schema`);
@@ -134,7 +134,82 @@ pub fn decode_batch(
             None => r,
         });
     }
+    check_all_numbers_finite(text, &batch, sensors)?;
     convert_batch(batch, sensors, limits)
+}
+
+/// Every number of a batch must be finite, extension fields included; serde skips unknown
+/// fields without reading their numbers, so a `1e999` there would otherwise be accepted (and
+/// recorded as a line that `serde_json::Value` readers such as `plotweave replay` refuse).
+/// One more allocation-free pass over the text reads every number; the path of an offending
+/// one is only looked for when there is one.
+fn check_all_numbers_finite(
+    text: &str,
+    batch: &BatchWire,
+    sensors: &[SensorConfig],
+) -> Result<(), Rejection> {
+    if AnyValue::deserialize(&mut serde_json::Deserializer::from_str(text)).is_ok() {
+        return Ok(());
+    }
+    let mut de = serde_json::Deserializer::from_str(text);
+    let Err(e) = serde_path_to_error::deserialize::<_, AnyValue>(&mut de) else {
+        return Ok(());
+    };
+    let seq = Some(batch.seq);
+    let name = batch_name(seq, Some(&batch.sensor));
+    let r = classify_serde(seq, &name, &e.path().to_string(), e.inner());
+    Err(match sensors.iter().position(|s| s.id == batch.sensor) {
+        Some(i) => r.for_sensor(i),
+        None => r,
+    })
+}
+
+/// Any JSON value, read in full (numbers parsed, so an overflowing one is an error) and
+/// discarded.
+struct AnyValue;
+
+impl<'de> Deserialize<'de> for AnyValue {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        d.deserialize_any(AnyValue)
+    }
+}
+
+impl<'de> serde::de::Visitor<'de> for AnyValue {
+    type Value = AnyValue;
+
+    fn expecting(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str("any JSON value")
+    }
+    fn visit_bool<E>(self, _: bool) -> Result<Self, E> {
+        Ok(self)
+    }
+    fn visit_i64<E>(self, _: i64) -> Result<Self, E> {
+        Ok(self)
+    }
+    fn visit_u64<E>(self, _: u64) -> Result<Self, E> {
+        Ok(self)
+    }
+    fn visit_f64<E: serde::de::Error>(self, v: f64) -> Result<Self, E> {
+        if v.is_finite() {
+            Ok(self)
+        } else {
+            Err(E::custom(format!("number out of range: {v}")))
+        }
+    }
+    fn visit_str<E>(self, _: &str) -> Result<Self, E> {
+        Ok(self)
+    }
+    fn visit_unit<E>(self) -> Result<Self, E> {
+        Ok(self)
+    }
+    fn visit_seq<A: serde::de::SeqAccess<'de>>(self, mut a: A) -> Result<Self, A::Error> {
+        while a.next_element::<AnyValue>()?.is_some() {}
+        Ok(self)
+    }
+    fn visit_map<A: serde::de::MapAccess<'de>>(self, mut a: A) -> Result<Self, A::Error> {
+        while a.next_entry::<serde::de::IgnoredAny, AnyValue>()?.is_some() {}
+        Ok(self)
+    }
 }
 
 fn serde_rejection(
@@ -808,6 +883,32 @@ mod tests {
             Code::NonFinite,
             &["time", "finite"],
         );
+    }
+
+    #[test]
+    fn overflowing_number_in_an_extension_field_is_non_finite() {
+        // Found by the ingest_batch fuzz target (fuzz/regressions/ingest_batch/): serde skipped
+        // the unknown field without reading its number, so the batch was accepted.
+        check(
+            r#"{"sensor":"mole-camera","seq":13,"time":1,"detections":[{"x":1,"y":2,"note":{"gain":[1,-1e999]}}]}"#,
+            Code::NonFinite,
+            &[
+                "batch seq 13 from \"mole-camera\"",
+                "detections[0].note.gain[1]: every number must be finite",
+            ],
+        );
+        let r = reject(r#"{"sensor":"mole-camera","seq":14,"time":1,"detections":[],"x":1e999}"#);
+        assert_eq!(
+            (r.code, r.seq, r.sensor),
+            (Code::NonFinite, Some(14), Some(1))
+        );
+        // Finite extension numbers, tiny ones that round to zero included, are fine.
+        decode_batch(
+            r#"{"sensor":"mole-camera","seq":15,"time":1,"detections":[],"gain":[1e-400,2.5,-3]}"#,
+            &sensors(),
+            LIMITS,
+        )
+        .unwrap();
     }
 
     #[test]

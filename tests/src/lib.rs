@@ -21,6 +21,8 @@ use tokio_tungstenite::tungstenite::Message;
 use tokio_tungstenite::tungstenite::client::IntoClientRequest;
 use tokio_tungstenite::{MaybeTlsStream, WebSocketStream};
 
+pub mod load;
+
 /// Path of the binary under test (expands to `env!` in the calling test crate).
 #[macro_export]
 macro_rules! plotweave_bin {
@@ -113,18 +115,29 @@ pub struct Server {
     /// `HOST:PORT` it listens on.
     pub addr: String,
     stderr_path: PathBuf,
+    stdout_path: PathBuf,
 }
 
 impl Server {
     /// Start `plotweave ARGS --listen 127.0.0.1:0` and wait for its `listening on` line.
     pub fn start(bin: &Path, args: &[&str]) -> Result<Server> {
+        Self::start_with_env(bin, args, &[])
+    }
+
+    /// [`Server::start`] with extra environment variables (`("RUST_LOG", "trace")` overrides
+    /// the default `info`). Standard output is kept as well as standard error
+    /// ([`Server::stdout`]).
+    pub fn start_with_env(bin: &Path, args: &[&str], env: &[(&str, &str)]) -> Result<Server> {
         let dir = temp_dir("server");
         let stderr_path = dir.join("stderr.log");
+        let stdout_path = dir.join("stdout.log");
         let stderr = std::fs::File::create(&stderr_path)?;
+        let mut stdout_file = std::fs::File::create(&stdout_path)?;
         let mut child = Command::new(bin)
             .args(args)
             .args(["--listen", "127.0.0.1:0"])
             .env("RUST_LOG", "info")
+            .envs(env.iter().copied())
             .stdin(Stdio::null())
             .stdout(Stdio::piped())
             .stderr(stderr)
@@ -133,12 +146,16 @@ impl Server {
         let stdout = child.stdout.take().context("no stdout")?;
         let (tx, rx) = std::sync::mpsc::channel();
         std::thread::spawn(move || {
+            use std::io::Write as _;
             let mut lines = BufReader::new(stdout).lines();
             if let Some(Ok(first)) = lines.next() {
+                let _ = writeln!(stdout_file, "{first}");
                 let _ = tx.send(first);
             }
-            // Keep draining so the child never blocks on a full pipe.
-            for _ in lines {}
+            // Keep draining (and keeping) so the child never blocks on a full pipe.
+            for line in lines.map_while(Result::ok) {
+                let _ = writeln!(stdout_file, "{line}");
+            }
         });
         let first = match rx.recv_timeout(WAIT) {
             Ok(l) => l,
@@ -159,6 +176,7 @@ impl Server {
             child: Some(child),
             addr,
             stderr_path,
+            stdout_path,
         })
     }
 
@@ -175,6 +193,11 @@ impl Server {
     /// The server's standard error so far.
     pub fn stderr(&self) -> String {
         std::fs::read_to_string(&self.stderr_path).unwrap_or_default()
+    }
+
+    /// The server's standard output so far (its `listening on` line included).
+    pub fn stdout(&self) -> String {
+        std::fs::read_to_string(&self.stdout_path).unwrap_or_default()
     }
 
     /// Send SIGTERM (via the `kill` command, to this child's pid only).
@@ -229,10 +252,24 @@ pub type Ws = WebSocketStream<MaybeTlsStream<TcpStream>>;
 /// Connect to `url`, with `Authorization: Bearer token` when given. On a refused upgrade the
 /// error carries the HTTP status and body.
 pub async fn ws_connect(url: &str, token: Option<&str>) -> Result<Ws> {
+    let auth = token.map(|t| format!("Bearer {t}"));
+    let headers: Vec<(&str, &str)> = auth
+        .as_deref()
+        .map(|a| ("authorization", a))
+        .into_iter()
+        .collect();
+    ws_connect_with(url, &headers).await
+}
+
+/// Connect to `url` with extra request `headers` (name, value), e.g. a malformed
+/// `Authorization`. On a refused upgrade the error carries the HTTP status and body.
+pub async fn ws_connect_with(url: &str, headers: &[(&str, &str)]) -> Result<Ws> {
     let mut req = url.into_client_request()?;
-    if let Some(t) = token {
-        req.headers_mut()
-            .insert("authorization", format!("Bearer {t}").parse()?);
+    for (name, value) in headers {
+        req.headers_mut().append(
+            tokio_tungstenite::tungstenite::http::HeaderName::from_bytes(name.as_bytes())?,
+            value.parse()?,
+        );
     }
     match tokio::time::timeout(WAIT, tokio_tungstenite::connect_async(req)).await {
         Err(_) => bail!("connect to {url} timed out"),
@@ -365,11 +402,28 @@ pub async fn http(
     token: Option<&str>,
     body: Option<&str>,
 ) -> Result<Response> {
+    let auth = token.map(|t| format!("Bearer {t}"));
+    let headers: Vec<(&str, &str)> = auth
+        .as_deref()
+        .map(|a| ("Authorization", a))
+        .into_iter()
+        .collect();
+    http_with(addr, method, path, &headers, body).await
+}
+
+/// [`http`] with arbitrary request `headers` (name, value), e.g. a malformed `Authorization`.
+pub async fn http_with(
+    addr: &str,
+    method: &str,
+    path: &str,
+    headers: &[(&str, &str)],
+    body: Option<&str>,
+) -> Result<Response> {
     let fut = async {
         let mut s = TcpStream::connect(addr).await?;
         let mut req = format!("{method} {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n");
-        if let Some(t) = token {
-            req.push_str(&format!("Authorization: Bearer {t}\r\n"));
+        for (name, value) in headers {
+            req.push_str(&format!("{name}: {value}\r\n"));
         }
         if let Some(b) = body {
             req.push_str(&format!(

@@ -49,3 +49,47 @@ fn an_open_site_is_refused_on_a_public_address() {
     );
     assert!(stderr.contains("--allow-open"), "{stderr}");
 }
+
+/// Regression: the demo feeder's scans were acknowledged and tracked but never counted in
+/// `plotweave_batches_received_total`, so `acked / received` read as infinite on the demo.
+/// They now count like batches that arrive over ingest.
+#[tokio::test]
+async fn demo_scans_count_as_received_batches() {
+    let server = Server::start(&plotweave_bin!(), &["demo"]).unwrap();
+    let mut frames = ws_connect(&server.ws_url("/v1/frames"), None)
+        .await
+        .unwrap();
+    let mut seen = std::collections::BTreeMap::<String, u64>::new();
+    while seen.len() < 2 {
+        let f = next_json(&mut frames).await.unwrap();
+        *seen
+            .entry(f["sensor"].as_str().unwrap().to_string())
+            .or_default() += 1;
+    }
+    let m = scrape(&server.addr).await.unwrap();
+    for id in ["kestrel-radar", "north-mole-camera"] {
+        let l = [("sensor", id)];
+        let received = sample(&m, "plotweave_batches_received_total", &l).unwrap();
+        let acked = sample(&m, "plotweave_batches_acked_total", &l).unwrap();
+        let rejected: f64 = m
+            .samples
+            .iter()
+            .filter(|s| {
+                s.metric == "plotweave_batches_rejected_total" && s.labels.get("sensor") == Some(id)
+            })
+            .filter_map(|s| match s.value {
+                prometheus_parse::Value::Counter(v) => Some(v),
+                _ => None,
+            })
+            .sum();
+        assert!(
+            acked >= seen[id] as f64,
+            "{id}: {acked} acked, frames {seen:?}"
+        );
+        // A scrape may fall between the feeder's count of one scan and that scan's ack.
+        assert!(
+            received == acked + rejected || received == acked + rejected + 1.0,
+            "{id}: received {received}, acked {acked}, rejected {rejected}"
+        );
+    }
+}

@@ -301,12 +301,12 @@ async fn authorisation_of_ingest_frames_and_reads() {
         e.starts_with("HTTP 401") && e.contains("not the token of any configured sensor"),
         "{e}"
     );
-    // The read token is not an ingest token.
+    // The read token is valid but not an ingest token: 403 (docs/wire.md, error codes).
     let e = ws_connect(&ingest, Some(READ_TOKEN))
         .await
         .unwrap_err()
         .to_string();
-    assert!(e.starts_with("HTTP 401"), "{e}");
+    assert!(e.starts_with("HTTP 403"), "{e}");
     // The radar's token sends for the radar only.
     let mut ws = ws_connect(&ingest, Some(RADAR_TOKEN)).await.unwrap();
     let reply = send_batch(&mut ws, &radar_batch(1, 1_764_600_000.0, &[(800.0, 45.0)]))
@@ -325,7 +325,7 @@ async fn authorisation_of_ingest_frames_and_reads() {
         .await
         .unwrap_err()
         .to_string();
-    assert!(e.starts_with("HTTP 401"), "{e}");
+    assert!(e.starts_with("HTTP 403"), "{e}");
     assert!(ws_connect(&frames, Some(READ_TOKEN)).await.is_ok());
     assert!(ws_connect(&frames, Some(ADMIN_TOKEN)).await.is_ok());
     let e = ws_connect(&format!("{frames}?status=lost"), Some(READ_TOKEN))

@@ -277,3 +277,116 @@ async fn interval_policy_records_and_a_clean_stop_flushes() {
         "{out}"
     );
 }
+
+/// The recorder's metrics agree with the files on disk. With `fsync` and one batch at a time
+/// (each acknowledgement awaited) every batch is one writer pass with one fsync, and each
+/// rotation syncs the file it closes; the bytes are the files' total size. Removing the
+/// directory under the running server makes the next rotation fail: each batch of such a pass
+/// is refused `internal` and the pass is counted as a write error.
+#[tokio::test]
+async fn recording_metrics_match_the_files_and_count_failed_rotations() {
+    let dir = temp_dir("record-metrics");
+    let rec = dir.join("rec");
+    let cfg = recording_site(&dir, "fsync", "rotate_bytes = 4096");
+    let server = Server::start(
+        &plotweave_bin!(),
+        &["serve", "--config", cfg.to_str().unwrap()],
+    )
+    .unwrap();
+    let get = |m: &prometheus_parse::Scrape, name: &str| {
+        sample(m, name, &[]).unwrap_or_else(|| panic!("no sample {name}"))
+    };
+    let m = scrape(&server.addr).await.unwrap();
+    for name in [
+        "plotweave_recording_batches_total",
+        "plotweave_recording_bytes_total",
+        "plotweave_recording_fsyncs_total",
+        "plotweave_recording_write_errors_total",
+        "plotweave_recording_commit_seconds_count",
+        "plotweave_recording_queue_depth",
+    ] {
+        assert_eq!(get(&m, name), 0.0, "{name} before any batch");
+    }
+
+    let mut camera = ws_connect(&server.ws_url("/v1/ingest"), Some(CAMERA_TOKEN))
+        .await
+        .unwrap();
+    let t0 = 1_764_600_000.0;
+    let n = 90u64;
+    for k in 1..=n {
+        let b = camera_batch(k, t0 + k as f64, &[(300.0 + k as f64, 640.0)]);
+        assert_eq!(
+            send_batch(&mut camera, &b).await.unwrap(),
+            serde_json::json!({ "ack": k })
+        );
+    }
+    let m = scrape(&server.addr).await.unwrap();
+    let (files, lines) = recorded(&rec);
+    let on_disk: u64 = files
+        .iter()
+        .map(|f| std::fs::metadata(f).unwrap().len())
+        .sum();
+    assert!(files.len() >= 3, "{files:?}");
+    assert_eq!(lines.len() as u64, n);
+    assert_eq!(get(&m, "plotweave_recording_batches_total"), n as f64);
+    assert_eq!(get(&m, "plotweave_recording_bytes_total"), on_disk as f64);
+    let rotations = files.len() as f64 - 1.0;
+    assert_eq!(
+        get(&m, "plotweave_recording_fsyncs_total"),
+        n as f64 + rotations
+    );
+    assert_eq!(
+        get(&m, "plotweave_recording_commit_seconds_count"),
+        n as f64
+    );
+    assert!(get(&m, "plotweave_recording_commit_seconds_sum") > 0.0);
+    assert_eq!(get(&m, "plotweave_recording_queue_depth"), 0.0);
+    assert_eq!(get(&m, "plotweave_recording_write_errors_total"), 0.0);
+
+    // Pull the directory out from under the server: the open file still takes lines, the
+    // next rotation cannot create its file.
+    std::fs::remove_dir_all(&rec).unwrap();
+    let (mut ok, mut refused) = (0u64, 0u64);
+    for k in n + 1..=n + 60 {
+        let b = camera_batch(k, t0 + k as f64, &[(300.0 + k as f64, 640.0)]);
+        let reply = send_batch(&mut camera, &b).await.unwrap();
+        match error_code(&reply) {
+            None => {
+                assert_eq!(refused, 0, "acked after a failed rotation: {reply}");
+                ok += 1;
+            }
+            Some("internal") => {
+                let msg = reply["error"]["message"].as_str().unwrap();
+                assert!(
+                    msg.contains("not recorded") && msg.contains("cannot write the recording"),
+                    "{msg}"
+                );
+                refused += 1;
+            }
+            Some(other) => panic!("unexpected {other}: {reply}"),
+        }
+    }
+    assert!(refused > 0 && ok > 0, "ok {ok}, refused {refused}");
+    let m = scrape(&server.addr).await.unwrap();
+    assert_eq!(
+        get(&m, "plotweave_recording_write_errors_total"),
+        refused as f64
+    );
+    assert_eq!(
+        get(&m, "plotweave_recording_batches_total"),
+        (n + ok) as f64
+    );
+    assert_eq!(
+        get(&m, "plotweave_recording_commit_seconds_count"),
+        (n + ok + refused) as f64
+    );
+    assert_eq!(
+        sample(
+            &m,
+            "plotweave_batches_rejected_total",
+            &[("sensor", "quay-camera"), ("reason", "internal")]
+        ),
+        Some(refused as f64)
+    );
+    assert_eq!(get(&m, "plotweave_recording_queue_depth"), 0.0);
+}

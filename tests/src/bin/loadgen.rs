@@ -11,6 +11,11 @@
 //! target/release/loadgen --bin target/release/plotweave-under-test
 //! ```
 //! Bounded in count and time, loopback only. Prints a summary and one JSON line.
+//!
+//! With `--slow-subscribers N` it runs the fan-out check of `plotweave_tests::load` instead
+//! (the driver of `tests/tests/load.rs`): a baseline phase with only fast subscribers, a
+//! loaded phase with N slow ones added, then an exact count check (acked seqs = frames seen =
+//! the server's counters) and the server's peak memory; it exits 1 if the account is not exact.
 #![allow(missing_docs)]
 
 use std::collections::HashMap;
@@ -51,6 +56,77 @@ struct Args {
     /// Real objects per sensor (the rest of each batch is clutter).
     #[arg(long, default_value_t = 20)]
     objects: usize,
+    /// Fan-out check (`plotweave_tests::load`): a baseline phase with `--subscribers` fast
+    /// subscribers, then a phase of the same length with this many slow ones added; exact
+    /// count check and peak memory at the end. 0 (default) runs the two phases above.
+    #[arg(long, default_value_t = 0)]
+    slow_subscribers: usize,
+    /// Fan-out check: milliseconds a slow subscriber sleeps before each read.
+    #[arg(long, default_value_t = 50)]
+    slow_read_ms: u64,
+    /// Fan-out check: `SO_RCVBUF` of a slow subscriber's socket, bytes.
+    #[arg(long, default_value_t = 4096)]
+    slow_recv_buffer: u32,
+    /// Fan-out check: `tracker.reorder_window`, s (connections race each other by up to the
+    /// ack latency; frames wait this long for stragglers).
+    #[arg(long, default_value_t = 0.05)]
+    reorder_window: f64,
+    /// Fan-out check: `server.limits.frame_buffer`, frames.
+    #[arg(long, default_value_t = 256)]
+    frame_buffer: usize,
+    /// Fan-out check: `server.limits.queue_depth`, batches.
+    #[arg(long, default_value_t = 256)]
+    queue_depth: usize,
+}
+
+/// `--slow-subscribers N`: run the fan-out check and exit 1 unless the account is exact.
+async fn fanout(args: &Args) -> Result<()> {
+    let spec = plotweave_tests::load::LoadSpec {
+        sensors: args.sensors,
+        detections: args.detections,
+        objects: args.objects.min(args.detections),
+        window: args.window,
+        fast_subscribers: args.subscribers.max(1),
+        slow_subscribers: args.slow_subscribers,
+        slow_read: Duration::from_millis(args.slow_read_ms),
+        slow_recv_buffer: args.slow_recv_buffer,
+        baseline_seconds: args.seconds,
+        loaded_seconds: args.seconds,
+        reorder_window: args.reorder_window,
+        frame_buffer: args.frame_buffer,
+        queue_depth: args.queue_depth,
+    };
+    let r = plotweave_tests::load::run(&args.bin, &spec).await?;
+    print!("{}", r.summary(&spec));
+    let q = plotweave_tests::load::quantile;
+    let slow: Vec<_> = r.subscribers.iter().filter(|s| s.slow).collect();
+    println!(
+        "{}",
+        serde_json::json!({
+            "sensors": spec.sensors, "detections_per_batch": spec.detections,
+            "fast_subscribers": spec.fast_subscribers, "slow_subscribers": spec.slow_subscribers,
+            "baseline_batches_per_second": r.baseline.rate(),
+            "loaded_batches_per_second": r.loaded.rate(),
+            "loaded_detections_per_second": r.loaded.rate() * spec.detections as f64,
+            "baseline_ack_p50_ms": q(&r.baseline.ack_latency_ms, 0.5),
+            "baseline_ack_p99_ms": q(&r.baseline.ack_latency_ms, 0.99),
+            "loaded_ack_p50_ms": q(&r.loaded.ack_latency_ms, 0.5),
+            "loaded_ack_p99_ms": q(&r.loaded.ack_latency_ms, 0.99),
+            "loaded_frame_p50_ms": q(&r.loaded.frame_latency_ms, 0.5),
+            "loaded_frame_p99_ms": q(&r.loaded.frame_latency_ms, 0.99),
+            "frames_while_slow_connected": r.frames_while_slow_connected,
+            "slow_frames": slow.iter().map(|s| s.frames).collect::<Vec<_>>(),
+            "slow_skipped": slow.iter().map(|s| s.skipped).collect::<Vec<_>>(),
+            "slow_markers": slow.iter().map(|s| s.markers).collect::<Vec<_>>(),
+            "rejections": r.rejections,
+            "peak_rss_mib": r.peak_rss_kib.map(|k| k as f64 / 1024.0),
+            "count_match": r.mismatches.is_empty(),
+        })
+    );
+    if !r.mismatches.is_empty() {
+        bail!("the count check failed ({} mismatches)", r.mismatches.len());
+    }
+    Ok(())
 }
 
 fn site(args: &Args) -> String {
@@ -79,14 +155,25 @@ fn site(args: &Args) -> String {
     s
 }
 
-/// Deterministic batch `seq` of sensor `k`: `objects` straight-line movers plus uniform clutter.
+/// Deterministic batch `seq` of sensor `k`: `objects` straight-line movers plus uniform clutter,
+/// one scan per simulated second, as a staging replay of recorded 1 Hz scans sent as fast as
+/// the server takes them. Stamped from a base 35 days in the past (the latency phase starts at
+/// seq 1 000 000, 11.6 simulated days on), so that no batch is ahead of
+/// the server clock (`server.limits.max_time_ahead`).
 fn batch(args: &Args, k: usize, seq: u64) -> String {
+    static BASE: std::sync::OnceLock<f64> = std::sync::OnceLock::new();
+    let base = *BASE.get_or_init(|| {
+        let now = std::time::SystemTime::now()
+            .duration_since(std::time::UNIX_EPOCH)
+            .map_or(0.0, |d| d.as_secs_f64());
+        (now - 3_000_000.0).floor()
+    });
     let x0 = k as f64 * 20_000.0;
     let t = seq as f64;
     let mut out = String::with_capacity(args.detections * 40 + 80);
     out.push_str(&format!(
         "{{\"sensor\":\"load-{k}\",\"seq\":{seq},\"time\":{},\"detections\":[",
-        1.8e9 + t
+        base + t
     ));
     let mut state = seq
         .wrapping_mul(6364136223846793005)
@@ -262,6 +349,9 @@ fn peak_rss_mib(pid: u32) -> Option<f64> {
 #[tokio::main]
 async fn main() -> Result<()> {
     let args = Args::parse();
+    if args.slow_subscribers > 0 {
+        return fanout(&args).await;
+    }
     let dir = temp_dir("loadgen");
     let cfg = write_file(&dir, "load-site.toml", &site(&args));
     let server = Server::start(
