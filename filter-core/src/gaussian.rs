@@ -182,6 +182,14 @@ impl<const N: usize, const M: usize> PreparedUpdate<N, M> {
         (nu.transpose() * self.s_inv * nu)[(0, 0)]
     }
 
+    /// (det S, ln det S) as far as known without taking a logarithm: for the closed-form sizes
+    /// det S and NaN, otherwise NaN and ln det S. [`PreparedUpdate::ln_det_s`] of the same update
+    /// is `det.ln()` in the first case.
+    #[inline]
+    pub(crate) fn det_parts(&self) -> (f64, f64) {
+        (self.det_s, self.ln_det_s.get())
+    }
+
     /// ln det S.
     #[inline]
     pub fn ln_det_s(&self) -> f64 {

@@ -134,14 +134,48 @@ pub fn decode_batch(
             None => r,
         });
     }
-    check_all_numbers_finite(text, &batch, sensors)?;
+    if needs_full_reading(text) {
+        check_all_numbers_finite(text, &batch, sensors)?;
+    }
     convert_batch(batch, sensors, limits)
+}
+
+/// Whether the second pass of [`check_all_numbers_finite`] is needed: whether `text` can hold
+/// something the typed decoder skips unchecked in an extension field, i.e. a number that
+/// overflows `f64` (|x| ≥ 1.8 × 10³⁰⁸: it needs an exponent, which in JSON always follows a
+/// digit, as in `1e999`, or at least 309 integer digits), or a string the full reading refuses
+/// (an escape, such as a lone surrogate `\ud800`, or a raw control character). A batch with
+/// none of these (the usual one: no exponents, no escapes) skips the pass; a false alarm (e.g.
+/// `"2e5"` inside a string) only costs it.
+fn needs_full_reading(text: &str) -> bool {
+    let mut run = 0usize;
+    let mut prev_digit = false;
+    for &b in text.as_bytes() {
+        if b.is_ascii_digit() {
+            run += 1;
+            if run >= 309 {
+                return true;
+            }
+            prev_digit = true;
+        } else {
+            if (prev_digit && (b == b'e' || b == b'E'))
+                || b == b'\\'
+                || (b < 0x20 && !matches!(b, b'\t' | b'\n' | b'\r'))
+            {
+                return true;
+            }
+            run = 0;
+            prev_digit = false;
+        }
+    }
+    false
 }
 
 /// Every number of a batch must be finite, extension fields included; serde skips unknown
 /// fields without reading their numbers, so a `1e999` there would otherwise be accepted (and
 /// recorded as a line that `serde_json::Value` readers such as `plotweave replay` refuse).
-/// One more allocation-free pass over the text reads every number; the path of an offending
+/// One more allocation-free pass over the text reads every number (and string), when
+/// [`needs_full_reading`] says the text may need it; the path of an offending
 /// one is only looked for when there is one.
 fn check_all_numbers_finite(
     text: &str,
@@ -883,6 +917,44 @@ mod tests {
             Code::NonFinite,
             &["time", "finite"],
         );
+    }
+
+    #[test]
+    fn prefilter_flags_every_text_the_typed_decoder_could_let_through() {
+        // The rule of JSON numbers (RFC 8259 §6): an exponent follows a digit; without one an
+        // overflow needs 309 integer digits (f64::MAX ≈ 1.8e308, the IEEE 754 binary64 limit).
+        let long = format!("{{\"x\":{}}}", "9".repeat(309));
+        let short = format!("{{\"x\":{}}}", "9".repeat(308));
+        assert_eq!(
+            short[5..]
+                .trim_end_matches('}')
+                .parse::<f64>()
+                .map(f64::is_finite),
+            Ok(true)
+        );
+        assert_eq!(
+            long[5..]
+                .trim_end_matches('}')
+                .parse::<f64>()
+                .map(f64::is_finite),
+            Ok(false)
+        );
+        for (text, flagged) in [
+            (r#"{"x":1e999}"#, true),
+            (r#"{"x":-2.5E+400}"#, true),
+            (r#"{"x":1.5e3}"#, true),
+            (long.as_str(), true),
+            (short.as_str(), false),
+            (r#"{"x":1,"s":"\ud800"}"#, true),
+            ("{\"x\":1,\"s\":\"a\u{1}b\"}", true),
+            ("{\"x\":1,\n\t\"y\":2}", false),
+            (
+                r#"{"sensor":"east-pier-radar","seq":1,"time":1764600000.25,"detections":[{"range":12.5,"bearing":3}]}"#,
+                false,
+            ),
+        ] {
+            assert_eq!(needs_full_reading(text), flagged, "{text}");
+        }
     }
 
     #[test]

@@ -692,7 +692,9 @@ struct Typed<const M: usize> {
 struct GateRecord<const M: usize> {
     zhat: SVector<f64, M>,
     s_inv: nalgebra::SMatrix<f64, M, M>,
-    ln_det_s: f64,
+    /// (det S, ln det S) as [`crate::gaussian::PreparedUpdate`] keeps them: the logarithm is
+    /// taken only for a track that gates a detection (most candidates gate none).
+    det_s: (f64, f64),
     pd: f64,
     hw: f64,
 }
@@ -1216,7 +1218,7 @@ impl Tracker {
             prepared.push(Some(GateRecord {
                 zhat: prep.zhat,
                 s_inv: prep.s_inv,
-                ln_det_s: prep.ln_det_s(),
+                det_s: prep.det_parts(),
                 pd,
                 hw,
             }));
@@ -1237,13 +1239,15 @@ impl Tracker {
             let Some(GateRecord {
                 zhat,
                 s_inv,
-                ln_det_s,
+                det_s,
                 pd,
                 hw,
             }) = p
             else {
                 continue;
             };
+            let mut ln_det_s = det_s.1;
+            let mut ln_pd = f64::NAN;
             let (x, y) = (
                 self.tracks[ti].state.mean()[0],
                 self.tracks[ti].state.mean()[1],
@@ -1259,8 +1263,13 @@ impl Tracker {
                 // d² = νᵀ S⁻¹ ν, as PreparedUpdate::d2.
                 let d2 = (nu.transpose() * s_inv * nu)[(0, 0)];
                 if gate.accepts(d2) {
-                    let ln_lr =
-                        pd.ln() + stats::normal_ln_from_parts(d2, *ln_det_s, M) - rt.ln_kappa;
+                    if ln_det_s.is_nan() {
+                        ln_det_s = det_s.0.ln();
+                    }
+                    if ln_pd.is_nan() {
+                        ln_pd = pd.ln();
+                    }
+                    let ln_lr = ln_pd + stats::normal_ln_from_parts(d2, ln_det_s, M) - rt.ln_kappa;
                     pairs.push((ti as u32, j, nu, ln_lr, d2));
                 }
             }
