@@ -29,7 +29,7 @@ use filter_core::tracker::{Measurement, Scan, SensorConfig, SensorKind};
 use futures_util::{Sink, SinkExt, Stream, StreamExt};
 use tokio::sync::broadcast::error::RecvError;
 
-use crate::keepalive::{Due, Keepalive, give_up};
+use crate::keepalive::{Keepalive, give_up};
 use crate::metrics::CloseReason;
 use crate::server::AppState;
 use crate::wire;
@@ -148,16 +148,10 @@ where
                 None | Some(Err(_)) | Some(Ok(Message::Close(_))) => return CloseReason::Peer,
                 Some(Ok(_)) => alive.heard(), // listeners have nothing to say but Pongs
             },
-            due = alive.due() => {
-                let why = match due {
-                    Due::Ping => match alive.ping(&mut sink).await {
-                        Ok(()) => continue,
-                        Err(why) => why,
-                    },
-                    Due::Idle => CloseReason::IdleTimeout,
-                };
-                return give_up(&mut sink, why).await;
-            }
+            due = alive.due() => match alive.act(due, &mut sink).await {
+                Ok(()) => continue,
+                Err(why) => return give_up(&mut sink, why).await,
+            },
             r = rx.recv() => {
                 let m = match r {
                     Ok(text) => Message::Text(text),

@@ -131,6 +131,18 @@ impl Keepalive {
     {
         self.send(sink, Message::Ping(Default::default())).await
     }
+
+    /// Act on what [`Keepalive::due`] returned: send the Ping, or report the idle timeout.
+    /// `Err` is why the session must end.
+    pub(crate) async fn act<S>(&self, due: Due, sink: &mut S) -> Result<(), CloseReason>
+    where
+        S: Sink<Message> + Unpin,
+    {
+        match due {
+            Due::Ping => self.ping(sink).await,
+            Due::Idle => Err(CloseReason::IdleTimeout),
+        }
+    }
 }
 
 /// End a session whose peer is gone or unresponsive: for a timeout, try (for at most

@@ -31,7 +31,7 @@ use tracing::Instrument;
 use crate::config::{Secret, Site};
 use crate::error::{Code, Error, Rejection};
 use crate::http::TrackQuery;
-use crate::keepalive::{Due, Keepalive, give_up};
+use crate::keepalive::{Keepalive, give_up};
 use crate::metrics::{
     self, AuthReason, CloseReason, EndpointLabels, Metrics, UNKNOWN_SENSOR_LABEL,
 };
@@ -455,12 +455,8 @@ where
             () = cancel.cancelled() => break,
             m = stream.next() => m,
             due = alive.due() => {
-                let why = match due {
-                    Due::Ping => match alive.ping(&mut sink).await {
-                        Ok(()) => continue,
-                        Err(why) => why,
-                    },
-                    Due::Idle => CloseReason::IdleTimeout,
+                let Err(why) = alive.act(due, &mut sink).await else {
+                    continue;
                 };
                 drop(producing);
                 return give_up(&mut sink, why).await;
@@ -659,14 +655,11 @@ where
                 // their pings are answered below us.
                 Some(Ok(_)) => alive.heard(),
             },
-            due = alive.due() => match due {
-                Due::Ping => {
-                    if let Err(why) = alive.ping(&mut sink).await {
-                        break Err(why);
-                    }
+            due = alive.due() => {
+                if let Err(why) = alive.act(due, &mut sink).await {
+                    break Err(why);
                 }
-                Due::Idle => break Err(CloseReason::IdleTimeout),
-            },
+            }
             r = rx.recv() => match r {
                 Ok(msg) => {
                     if let Err(why) = alive.send(&mut sink, render(&msg, &mut buf)).await {
