@@ -256,7 +256,8 @@ fn replay_file(
 /// `interval`, hands a copy of the state to the writer thread.
 pub struct Snapshotter {
     interval: Duration,
-    last: Instant,
+    /// When the last snapshot was taken (`None`: none yet in this process).
+    last: Option<Instant>,
     site: String,
     configured: Vec<SensorConfig>,
     applied: Vec<Option<Applied>>,
@@ -308,7 +309,7 @@ impl Snapshotter {
             .map_err(|e| Error::io("cannot start the snapshot thread", e))?;
         Ok(Snapshotter {
             interval: config.interval,
-            last: Instant::now(),
+            last: None,
             site: site.name.clone(),
             configured: site.sensors.clone(),
             applied: restored.applied.clone(),
@@ -335,8 +336,7 @@ impl Snapshotter {
     /// Take a snapshot of `tracker` if one is due (the interval has passed and something
     /// changed, or this is the first call).
     pub fn tick(&mut self, tracker: &Tracker) {
-        let first = self.metrics.taken.get() == 0;
-        if self.dirty && (first || self.last.elapsed() >= self.interval) {
+        if self.dirty && self.last.is_none_or(|t| t.elapsed() >= self.interval) {
             self.take(tracker);
         }
     }
@@ -360,7 +360,7 @@ impl Snapshotter {
 
     fn take(&mut self, tracker: &Tracker) {
         let file = self.build(tracker);
-        self.last = Instant::now();
+        self.last = Some(Instant::now());
         self.dirty = false;
         self.metrics.taken.inc();
         if let Some(tx) = &self.tx
