@@ -31,6 +31,8 @@ fn main() {
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(1);
     let mut times = Vec::new();
     let mut worst = (0.0, 0, 0, 0);
+    // (confirmed, tentative, pictures) over the scans after the first 100.
+    let mut reported = (0usize, 0usize, 0usize);
     for k in 0..scans {
         let time = k as f64 * dt;
         let mut d: Vec<Measurement> = (0..20)
@@ -56,6 +58,15 @@ fn main() {
             .unwrap();
         let e = s.elapsed().as_secs_f64() * 1e3;
         times.push(e);
+        if k >= 100 {
+            for tr in &p.tracks {
+                match tr.status {
+                    TrackStatus::Confirmed => reported.0 += 1,
+                    TrackStatus::Tentative => reported.1 += 1,
+                }
+            }
+            reported.2 += 1;
+        }
         if e > worst.0 {
             worst = (e, k, p.stats.candidates, p.stats.max_cluster_tracks);
         }
@@ -70,5 +81,11 @@ fn main() {
         worst.1,
         worst.2,
         worst.3
+    );
+    let pictures = reported.2.max(1) as f64;
+    println!(
+        "reported per picture: {:.1} confirmed, {:.1} tentative",
+        reported.0 as f64 / pictures,
+        reported.1 as f64 / pictures
     );
 }

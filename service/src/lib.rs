@@ -26,7 +26,8 @@
 //! let summary = run_batch(&site, recording.as_bytes(), &mut frames, &mut report).unwrap();
 //! assert_eq!((summary.frames, summary.skipped), (2, 1));
 //! assert!(String::from_utf8(report).unwrap().starts_with("line 2: batch seq 1"));
-//! // A detection no track explains starts a candidate; its second detection makes it a track.
+//! // A detection no track explains starts a candidate; on this sparse site its second
+//! // detection makes it a track.
 //! let last: serde_json::Value = serde_json::from_slice(frames.split(|b| *b == b'\n').nth(1).unwrap()).unwrap();
 //! assert_eq!(last["tracks"][0]["id"], 1);
 //! ```

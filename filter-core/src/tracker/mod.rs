@@ -15,8 +15,9 @@
 //!    existence-weighted likelihood ratios of the sensor's clutter model.
 //! 5. **Update** states (PDA combination, Joseph form) and existence (integrated PDA, Mušicki,
 //!    Evans & Stanković, IEEE TAC 39(6), 1994; joint form, Mušicki & Evans 2004).
-//! 6. **Births** from detections no track explains (as internal candidates, reported from their
-//!    second detection on), **confirmation** and **ending** by existence
+//! 6. **Births** from detections no track explains (as internal candidates, reported once
+//!    their existence odds pass a sequential test, usually at the second detection of a
+//!    sparse sensor and the third in dense clutter), **confirmation** and **ending** by existence
 //!    thresholds or an M-of-N rule, covariance bound and coverage; then the per-sensor health
 //!    window is updated and the [`Picture`] returned.
 //!
@@ -453,9 +454,9 @@ pub struct ScanStats {
     pub hypotheses: usize,
     /// Clusters whose hypotheses were truncated to the k best.
     pub truncated_clusters: usize,
-    /// Tracks born: candidates that became reported tracks with their second detection.
+    /// Tracks born: candidates that became reported tracks (see [`TENTATIVE_ODDS_RISE`]).
     pub births: usize,
-    /// Live track candidates (one detection so far; not in pictures).
+    /// Live track candidates (not yet reported; not in pictures).
     pub candidates: usize,
     /// Tracks ended.
     pub ended: usize,
@@ -474,8 +475,9 @@ pub struct Picture {
     pub tag: u64,
     /// Every reported live track, ascending by id. A detection that no track explains starts a
     /// *candidate*, which is kept inside the tracker and enters pictures (as tentative, with a
-    /// new id) only with its second detection; in a cluttered scan most candidates never do, so
-    /// frames stay small.
+    /// new id) only once its existence odds have risen a hundredfold (a second detection of a
+    /// sparse sensor, a third in dense clutter); most clutter candidates never do, so frames
+    /// stay small.
     pub tracks: Vec<TrackView>,
     /// Ids of tracks ended by this scan, ascending.
     pub ended: Vec<u64>,
@@ -578,7 +580,7 @@ const RANGE_RATE_SPAN: f64 = 50.0;
 /// Internal track state.
 #[derive(Debug, Clone)]
 struct Track {
-    /// Public id; 0 while the track is a candidate (born from one detection, not yet reported).
+    /// Public id; 0 while the track is a candidate (not yet reported).
     id: u64,
     state: Gaussian<4>,
     existence: f64,
@@ -603,13 +605,23 @@ struct Track {
 /// birth: a sequential probability ratio test of "object" against "clutter" (Wald 1945;
 /// Blackman & Popoli, *Design and Analysis of Modern Tracking Systems*, 1999, §6.2), so the rule
 /// does not depend on how small the birth existence of a cluttered sensor is.
-const TENTATIVE_ODDS_DROP: f64 = 1e-2;
+pub const TENTATIVE_ODDS_DROP: f64 = 1e-2;
 
 /// A tentative track not confirmed after this many covered scans ends. In dense clutter the
 /// existence of a clutter-born track performs a random walk with almost no drift (under the
 /// clutter hypothesis the likelihood ratio is a martingale), so without this bound tentative
 /// tracks would accumulate; real objects confirm within a handful of detections.
 const TENTATIVE_MAX_SCANS: u32 = 15;
+
+/// Under existence management a candidate is reported (gets an id and enters pictures) when
+/// its existence odds have risen this many times above its odds at birth: the upper threshold
+/// of the sequential probability ratio test whose lower one is [`TENTATIVE_ODDS_DROP`]. Wald's
+/// thresholds for error probabilities α (clutter reported) and β (object dropped) are
+/// A ≈ (1 − β)/α and B ≈ β/(1 − α) (Wald 1945); α = β = 1 % gives A ≈ 99 and B ≈ 0.0101,
+/// hence 10² and 10⁻². With a sparse sensor the second detection does it (one detection in a
+/// gate where clutter is rare is strong evidence); in dense clutter, where two detections a scan
+/// apart are nearly as likely clutter as an object, it takes a third.
+pub const TENTATIVE_ODDS_RISE: f64 = 1e2;
 
 /// Upper bound on live tracks. Births beyond it are refused (and counted in
 /// [`ScanStats::births_refused`]), which bounds memory whatever the sensors send.
@@ -663,6 +675,12 @@ struct Work {
     beta: Vec<f64>,
     used: Vec<f64>,
     claimed: Vec<f64>,
+    /// `claimed`, from the tracks reported at the start of the scan only.
+    claimed_reported: Vec<f64>,
+    /// Candidates' most likely detections: (detection, existence after the scan, track).
+    rivals: Vec<(u32, f64, u32)>,
+    /// Candidates that qualify for reporting this scan unless found to be duplicates.
+    promote: Vec<u32>,
     local: Vec<u32>,
     dets: Vec<u32>,
     /// Candidates of the tracks of one cluster; entries past the cluster's size are kept (with
@@ -1173,6 +1191,9 @@ impl Tracker {
             beta,
             used,
             claimed,
+            claimed_reported,
+            rivals,
+            promote,
             local,
             dets,
             pool,
@@ -1338,6 +1359,10 @@ impl Tracker {
         // of itself from its own detections).
         claimed.clear();
         claimed.resize(zs.len(), 0.0);
+        claimed_reported.clear();
+        claimed_reported.resize(zs.len(), 0.0);
+        rivals.clear();
+        promote.clear();
         local.clear();
         local.resize(zs.len(), u32::MAX);
         for group in by_root.chunk_by(|a, b| a.0 == b.0) {
@@ -1466,19 +1491,32 @@ impl Tracker {
             if wsum > 0.0 {
                 ws.iter_mut().for_each(|w| *w /= wsum);
             }
-            // A candidate whose most likely detection is already claimed by an older track is
-            // that track's echo, not a new object: it is dropped before it can be reported.
+            // A candidate whose most likely detection is already claimed by a reported track
+            // is that track's echo, not a new object: it is dropped before it can be reported.
+            // Candidates that most likely hold the same detection are rival versions of one
+            // object: only the most probable stays (decided after this loop).
+            let mut best_det = None;
             if tr.id == 0 {
                 let best = ws[1..]
                     .iter()
                     .zip(&pairs[range.clone()])
                     .max_by(|a, b| a.0.total_cmp(b.0));
-                if best.is_some_and(|(w, p)| *w > 0.5 && claimed[p.1 as usize] >= 0.5) {
-                    tr.duplicate = true;
+                if let Some((w, p)) = best
+                    && *w > 0.5
+                {
+                    if claimed_reported[p.1 as usize] >= 0.5 {
+                        tr.duplicate = true;
+                    } else {
+                        best_det = Some(p.1);
+                    }
                 }
             }
+            let reported = tr.id != 0;
             for (w, p) in ws[1..].iter().zip(&pairs[range.clone()]) {
                 claimed[p.1 as usize] += w;
+                if reported {
+                    claimed_reported[p.1 as usize] += w;
+                }
             }
             // With no gated detection (or none with weight) the prediction stands.
             if !nus.is_empty()
@@ -1488,6 +1526,9 @@ impl Tracker {
                 tr.state = pda_combine(&tr.state, &prep, nus, ws);
             }
             tr.existence = r_post;
+            if let Some(j) = best_det {
+                rivals.push((j, r_post, ti as u32));
+            }
             tr.age += 1;
             // Detected, given that the object exists: 1 − (conditional missed weight).
             let detected = 1.0 - w0 > 0.5;
@@ -1513,17 +1554,17 @@ impl Tracker {
                     }
                 }
             }
-            // A candidate becomes a reported track (and gets its id) with a second detection
-            // that raises its existence above what it had at birth (the evidence now favours an
-            // object over clutter), or when it is confirmed outright.
-            if tr.id == 0
-                && !tr.duplicate
-                && ((detected && tr.existence > tr.birth_existence)
-                    || tr.status == TrackStatus::Confirmed)
-            {
-                tr.id = self.next_id;
-                self.next_id += 1;
-                stats.births += 1;
+            // A candidate becomes a reported track (and gets its id) when the evidence favours
+            // an object over clutter (see [`TENTATIVE_ODDS_RISE`]), or when it is confirmed
+            // outright; under M-of-N management, with its second detection.
+            let reportable = match management {
+                Management::Existence { .. } => {
+                    detected && odds(tr.existence) > TENTATIVE_ODDS_RISE * odds(tr.birth_existence)
+                }
+                Management::MOfN { .. } => detected && tr.existence > tr.birth_existence,
+            };
+            if tr.id == 0 && !tr.duplicate && (reportable || tr.status == TrackStatus::Confirmed) {
+                promote.push(ti as u32);
             }
             if tr.status == TrackStatus::Confirmed {
                 health.clutter -= b_det;
@@ -1541,6 +1582,22 @@ impl Tracker {
                         health.nis_outside += u32::from(d2 < nis_lo || d2 > nis_hi);
                     }
                 }
+            }
+        }
+        // Rival candidates: per detection, the most probable keeps it (ties: the older index).
+        rivals.sort_unstable_by(|a, b| a.0.cmp(&b.0).then(b.1.total_cmp(&a.1)).then(a.2.cmp(&b.2)));
+        for pair in rivals.windows(2) {
+            if pair[0].0 == pair[1].0 {
+                self.tracks[pair[1].2 as usize].duplicate = true;
+            }
+        }
+        // Promotion in index order, so that ids are deterministic.
+        for &ti in promote.iter() {
+            let tr = &mut self.tracks[ti as usize];
+            if !tr.duplicate {
+                tr.id = self.next_id;
+                self.next_id += 1;
+                stats.births += 1;
             }
         }
         // Tracks not covered still age in M-of-N terms only when covered, so nothing to do.

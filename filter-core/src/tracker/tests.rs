@@ -144,6 +144,83 @@ fn ids_are_never_reused_and_ended_tracks_are_reported() {
     );
 }
 
+/// The camera with `clutter` false detections per scan over its 4 km × 4 km field of view.
+fn camera_with_clutter(clutter: f64) -> SensorConfig {
+    SensorConfig {
+        clutter_rate: clutter,
+        ..camera()
+    }
+}
+
+/// Existence odds factor of one detection exactly at the predicted position of a candidate
+/// born one second earlier from one detection, by the integrated PDA update (Mušicki, Evans &
+/// Stanković 1994: odds × (1 − P_D P_G + P_D Σ g_j / ρ)) and the survival prediction, with
+/// S = 2σ² + σ_v² Δt² + q̃ Δt³/3 per axis (the CWNA covariance, Bar-Shalom, Li & Kirubarajan
+/// 2001, §6.2.2, of a state whose position variance is σ² and velocity variance σ_v²).
+fn second_detection_odds_factor(cfg: &TrackerConfig, sensor: &SensorConfig) -> f64 {
+    let SensorKind::Cartesian { sigma } = sensor.kind else {
+        unreachable!("a cartesian test sensor")
+    };
+    let dt = 1.0;
+    let s = 2.0 * sigma * sigma
+        + cfg.initial_velocity_std.powi(2) * dt * dt
+        + cfg.process_noise * dt.powi(3) / 3.0;
+    let g = 1.0 / (2.0 * std::f64::consts::PI * s);
+    let rho = sensor.clutter_rate / (4000.0 * 4000.0);
+    let pd = sensor.detection_probability;
+    let r0 = sensor.birth_rate / (sensor.birth_rate + sensor.clutter_rate);
+    let r_pred = r0 * cfg.survival_probability.powf(dt);
+    let odds = |r: f64| r / (1.0 - r);
+    odds(r_pred) * (1.0 - pd * cfg.gate_probability + pd * g / rho) / odds(r0)
+}
+
+// A candidate is reported when its existence odds reach 10² times its odds at birth, Wald's
+// upper threshold for α = β = 1 %: with a sparse sensor its second detection does it, in dense
+// clutter (the same object, the same detections, 200 false detections a scan configured) the
+// second is not enough (the IPDA factor says by how much) and the third does it.
+#[test]
+fn candidates_are_reported_at_the_sequential_test_threshold() {
+    let cfg = TrackerConfig::default();
+    for (clutter, reported_from) in [(1.0, 2u64), (200.0, 3)] {
+        let sensor = camera_with_clutter(clutter);
+        let factor = second_detection_odds_factor(&cfg, &sensor);
+        assert_eq!(
+            factor > TENTATIVE_ODDS_RISE,
+            reported_from == 2,
+            "clutter {clutter}: the second detection multiplies the odds by {factor}"
+        );
+        let mut t = Tracker::new(cfg.clone(), vec![sensor]).unwrap();
+        for k in 1..=4u64 {
+            let p = t.submit(scan(0, k as f64, k, &[(120.0, -40.0)])).unwrap();
+            let n = p.iter().map(|p| p.tracks.len()).sum::<usize>();
+            let expected = usize::from(k >= reported_from);
+            assert_eq!(n, expected, "clutter {clutter}: tracks after scan {k}");
+        }
+    }
+}
+
+// Two candidates that most likely hold the same detection are two versions of one object: the
+// more probable one stays, whatever their order inside the tracker. Here the candidate born
+// 30 m away comes first and explains the stationary object's second detection worse.
+#[test]
+fn of_rival_candidates_the_more_probable_stays() {
+    let mut t = Tracker::new(TrackerConfig::default(), vec![camera_with_clutter(200.0)]).unwrap();
+    t.submit(scan(0, 1.0, 1, &[(30.0, 0.0), (0.0, 0.0)]))
+        .unwrap();
+    let p = t.submit(scan(0, 2.0, 2, &[(0.0, 0.0)])).unwrap();
+    assert_eq!(p[0].stats.candidates, 1, "the rival was dropped");
+    let p = t.submit(scan(0, 3.0, 3, &[(0.0, 0.0)])).unwrap();
+    let tracks = &p[0].tracks;
+    assert_eq!(tracks.len(), 1);
+    // The near candidate saw a stationary object; the far one would have moved at about
+    // −29 m/s to reach the detection.
+    assert!(
+        tracks[0].state[2].abs() < 5.0,
+        "the reported track is the near candidate: vx = {}",
+        tracks[0].state[2]
+    );
+}
+
 #[test]
 fn runtime_parameter_change_is_validated_and_applied() {
     let mut t = Tracker::new(TrackerConfig::default(), vec![camera(), radar()]).unwrap();
