@@ -250,6 +250,15 @@ impl Default for SnapshotMetrics {
     }
 }
 
+/// Upper bounds (s) of the ingest-to-frame latency buckets: a quarter of a millisecond apart
+/// from 0.5 to 2 ms, where a healthy site runs, so that a p99 there can be read off the
+/// histogram; coarser up to 10 s, where back-pressure and the reorder window
+/// (`tracker.reorder_window`, typically tens of ms) put it.
+const LATENCY_BUCKETS: [f64; 24] = [
+    0.000_1, 0.000_25, 0.000_5, 0.000_75, 0.001, 0.001_25, 0.001_5, 0.001_75, 0.002, 0.002_5,
+    0.003, 0.004, 0.005, 0.007_5, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0,
+];
+
 fn cluster_histogram() -> Histogram {
     // 1, 2, 4, ... 512 tracks
     Histogram::new(exponential_buckets(1.0, 2.0, 10))
@@ -418,7 +427,7 @@ impl Metrics {
             ingest_to_frame_latency: reg!(
                 "ingest_to_frame_latency_seconds",
                 "Time from receiving a batch to publishing its frame",
-                Histogram::new(exponential_buckets(0.0001, 2.0, 16))
+                Histogram::new(LATENCY_BUCKETS.iter().copied())
             ),
             queue_depth: reg!(
                 "engine_queue_depth",

@@ -379,6 +379,27 @@ fn wake_jitter(span: Duration) -> (f64, f64, f64, f64) {
     )
 }
 
+/// `(le, cumulative count)` of one `…_bucket{le="…"} N` exposition line (`+Inf` as infinity).
+fn parse_bucket(line: &str) -> Option<(f64, f64)> {
+    let rest = line.split_once("_bucket{le=\"")?.1;
+    let (le, rest) = rest.split_once('"')?;
+    let count = rest.trim_start_matches('}').trim().parse().ok()?;
+    let le = if le == "+Inf" {
+        f64::INFINITY
+    } else {
+        le.parse().ok()?
+    };
+    Some((le, count))
+}
+
+/// The smallest bucket bound under which at least the fraction `q` of the observations lie.
+fn bucket_bound(buckets: &[(f64, f64)], q: f64) -> Option<f64> {
+    let total = buckets.iter().map(|b| b.1).fold(0.0, f64::max);
+    (total > 0.0)
+        .then(|| buckets.iter().find(|b| b.1 >= q * total).map(|b| b.0))
+        .flatten()
+}
+
 fn pct(v: &[f64], p: f64) -> f64 {
     if v.is_empty() {
         return f64::NAN;
@@ -435,12 +456,24 @@ async fn main() -> Result<()> {
     let rss = server.pid().and_then(peak_rss_mib);
     // The server's own view: its ingest-to-frame latency histogram over both phases.
     if let Ok(r) = plotweave_tests::http(&addr, "GET", "/metrics", None, None).await {
+        let mut buckets = Vec::new();
         for l in r
             .body
             .lines()
             .filter(|l| l.starts_with("plotweave_ingest_to_frame_latency_seconds"))
         {
             println!("server {l}");
+            if let Some(b) = parse_bucket(l) {
+                buckets.push(b);
+            }
+        }
+        if let (Some(p50), Some(p99)) = (bucket_bound(&buckets, 0.5), bucket_bound(&buckets, 0.99))
+        {
+            println!(
+                "server ingest-to-frame latency (its histogram, both phases): p50 <= {:.2} ms, p99 <= {:.2} ms",
+                p50 * 1e3,
+                p99 * 1e3
+            );
         }
     }
     let det_rate = full.detections as f64 / full.seconds;
@@ -479,6 +512,28 @@ async fn main() -> Result<()> {
 #[cfg(test)]
 mod tests {
     use super::push_centimetres;
+
+    // The exposition format's cumulative buckets (Prometheus text format 0.0.4): the bound of
+    // a quantile is the first `le` whose count reaches it.
+    #[test]
+    fn histogram_bucket_bounds_are_read_from_exposition_lines() {
+        let lines = [
+            r#"plotweave_ingest_to_frame_latency_seconds_bucket{le="0.001"} 40"#,
+            r#"plotweave_ingest_to_frame_latency_seconds_bucket{le="0.0015"} 95"#,
+            r#"plotweave_ingest_to_frame_latency_seconds_bucket{le="0.002"} 99"#,
+            r#"plotweave_ingest_to_frame_latency_seconds_bucket{le="+Inf"} 100"#,
+            "plotweave_ingest_to_frame_latency_seconds_count 100",
+        ];
+        let b: Vec<_> = lines
+            .iter()
+            .filter_map(|l| super::parse_bucket(l))
+            .collect();
+        assert_eq!(b.len(), 4);
+        assert_eq!(super::bucket_bound(&b, 0.5), Some(0.0015));
+        assert_eq!(super::bucket_bound(&b, 0.99), Some(0.002));
+        assert_eq!(super::bucket_bound(&b, 1.0), Some(f64::INFINITY));
+        assert_eq!(super::bucket_bound(&[], 0.5), None);
+    }
 
     #[test]
     fn centimetres_read_back_within_half_a_centimetre() {
