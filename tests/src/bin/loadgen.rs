@@ -379,17 +379,19 @@ fn wake_jitter(span: Duration) -> (f64, f64, f64, f64) {
     )
 }
 
-/// `(le, cumulative count)` of one `…_bucket{le="…"} N` exposition line (`+Inf` as infinity).
-fn parse_bucket(line: &str) -> Option<(f64, f64)> {
-    let rest = line.split_once("_bucket{le=\"")?.1;
-    let (le, rest) = rest.split_once('"')?;
-    let count = rest.trim_start_matches('}').trim().parse().ok()?;
-    let le = if le == "+Inf" {
-        f64::INFINITY
-    } else {
-        le.parse().ok()?
-    };
-    Some((le, count))
+/// `(le, cumulative count)` of the server's ingest-to-frame latency histogram.
+fn latency_buckets(scrape: &prometheus_parse::Scrape) -> Vec<(f64, f64)> {
+    scrape
+        .samples
+        .iter()
+        .find(|s| s.metric == "plotweave_ingest_to_frame_latency_seconds")
+        .and_then(|s| match &s.value {
+            prometheus_parse::Value::Histogram(h) => {
+                Some(h.iter().map(|b| (b.less_than, b.count)).collect())
+            }
+            _ => None,
+        })
+        .unwrap_or_default()
 }
 
 /// The smallest bucket bound under which at least the fraction `q` of the observations lie.
@@ -455,17 +457,10 @@ async fn main() -> Result<()> {
     let rate = full.batches as f64 / full.seconds;
     let rss = server.pid().and_then(peak_rss_mib);
     // The server's own view: its ingest-to-frame latency histogram over both phases.
-    if let Ok(r) = plotweave_tests::http(&addr, "GET", "/metrics", None, None).await {
-        let mut buckets = Vec::new();
-        for l in r
-            .body
-            .lines()
-            .filter(|l| l.starts_with("plotweave_ingest_to_frame_latency_seconds"))
-        {
-            println!("server {l}");
-            if let Some(b) = parse_bucket(l) {
-                buckets.push(b);
-            }
+    if let Ok(scrape) = plotweave_tests::scrape(&addr).await {
+        let buckets = latency_buckets(&scrape);
+        for (le, n) in &buckets {
+            println!("server plotweave_ingest_to_frame_latency_seconds le={le} {n}");
         }
         if let (Some(p50), Some(p99)) = (bucket_bound(&buckets, 0.5), bucket_bound(&buckets, 0.99))
         {
@@ -513,21 +508,21 @@ async fn main() -> Result<()> {
 mod tests {
     use super::push_centimetres;
 
-    // The exposition format's cumulative buckets (Prometheus text format 0.0.4): the bound of
-    // a quantile is the first `le` whose count reaches it.
+    // The exposition format's cumulative buckets (Prometheus text format 0.0.4, read by the
+    // prometheus-parse crate): the bound of a quantile is the first `le` whose count reaches it.
     #[test]
     fn histogram_bucket_bounds_are_read_from_exposition_lines() {
         let lines = [
+            "# TYPE plotweave_ingest_to_frame_latency_seconds histogram",
             r#"plotweave_ingest_to_frame_latency_seconds_bucket{le="0.001"} 40"#,
             r#"plotweave_ingest_to_frame_latency_seconds_bucket{le="0.0015"} 95"#,
             r#"plotweave_ingest_to_frame_latency_seconds_bucket{le="0.002"} 99"#,
             r#"plotweave_ingest_to_frame_latency_seconds_bucket{le="+Inf"} 100"#,
             "plotweave_ingest_to_frame_latency_seconds_count 100",
         ];
-        let b: Vec<_> = lines
-            .iter()
-            .filter_map(|l| super::parse_bucket(l))
-            .collect();
+        let scrape = prometheus_parse::Scrape::parse(lines.iter().map(|l| Ok(l.to_string())))
+            .expect("valid exposition text");
+        let b = super::latency_buckets(&scrape);
         assert_eq!(b.len(), 4);
         assert_eq!(super::bucket_bound(&b, 0.5), Some(0.0015));
         assert_eq!(super::bucket_bound(&b, 0.99), Some(0.002));
