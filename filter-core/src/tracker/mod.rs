@@ -687,6 +687,8 @@ struct Work {
     /// their option buffers) for the next cluster.
     pool: Vec<Candidates>,
     lns: Vec<f64>,
+    /// Per track: (ln r, ln(1 − r P_D P_G)) for the tracks with gated detections.
+    ln_terms: Vec<(f64, f64)>,
     ws: Vec<f64>,
 }
 
@@ -1198,6 +1200,7 @@ impl Tracker {
             dets,
             pool,
             lns,
+            ln_terms,
             ws,
         } = work;
         // Reported tracks come first, candidates after (see the end of this function).
@@ -1208,42 +1211,16 @@ impl Tracker {
         let gamma = gate.threshold();
         let n_tracks = self.tracks.len();
         // 1. Prepared updates and gate bounding boxes of the covered tracks.
-        prepared.clear();
-        half_widths.clear();
-        for tr in &self.tracks {
-            let (x, y) = (tr.state.mean()[0], tr.state.mean()[1]);
-            if !rt.region.contains(x, y) {
-                prepared.push(None);
-                continue;
-            }
-            let Ok(prep) = tr.state.prepare(model) else {
-                prepared.push(None);
-                continue;
-            };
-            let pd = match rt.region {
-                Region::Sector { origin, .. } => {
-                    rt.pd.at_range((x - origin[0]).hypot(y - origin[1]))
-                }
-                Region::Rect { .. } => rt.pd.at_range(0.0),
-            };
-            let hw = match rt.model {
-                Model::Cartesian(_) => (gamma * prep.s[(0, 0)].max(prep.s[(1, 1)])).sqrt(),
-                // |Δxy| ≤ |Δr| + r |Δb| (chord ≤ arc), with the gate's range and bearing extents.
-                Model::Polar(_) | Model::PolarRate(_) => {
-                    let dr = (gamma * prep.s[(0, 0)]).sqrt();
-                    let db = (gamma * prep.s[(1, 1)]).sqrt().min(std::f64::consts::PI);
-                    dr + (prep.zhat[0] + dr) * db
-                }
-            };
-            half_widths.push(hw);
-            prepared.push(Some(GateRecord {
-                zhat: prep.zhat,
-                s_inv: prep.s_inv,
-                det_s: prep.det_parts(),
-                pd,
-                hw,
-            }));
-        }
+        let linear = matches!(rt.model, Model::Cartesian(_));
+        gate_records(
+            &self.tracks,
+            rt,
+            model,
+            gamma,
+            linear,
+            prepared,
+            half_widths,
+        );
         // 2. Spatial index with the median half-width as the cell size.
         let cell = if half_widths.is_empty() {
             100.0
@@ -1256,6 +1233,9 @@ impl Tracker {
         self.scratch.grid.rebuild(xy, cell.max(1.0));
         // 3. Gating: (track, detection, innovation, ln likelihood ratio, d²).
         pairs.clear();
+        // ln P_D of the last track that needed it: P_D is the same for most tracks (constant,
+        // or a rectangular field of view), so the logarithm is rarely taken again.
+        let mut last_ln_pd = (f64::NAN, f64::NAN);
         for (ti, p) in prepared.iter().enumerate() {
             let Some(GateRecord {
                 zhat,
@@ -1278,7 +1258,9 @@ impl Tracker {
             self.scratch
                 .grid
                 .query(x - hw, y - hw, x + hw, y + hw, cands);
-            cands.sort_unstable();
+            if cands.len() > 1 {
+                cands.sort_unstable();
+            }
             for &j in cands.iter() {
                 let nu = model.residual(&zs[j as usize], zhat);
                 // d² = νᵀ S⁻¹ ν, as PreparedUpdate::d2.
@@ -1288,7 +1270,10 @@ impl Tracker {
                         ln_det_s = det_s.0.ln();
                     }
                     if ln_pd.is_nan() {
-                        ln_pd = pd.ln();
+                        if pd.to_bits() != last_ln_pd.0.to_bits() {
+                            last_ln_pd = (*pd, pd.ln());
+                        }
+                        ln_pd = last_ln_pd.1;
                     }
                     let ln_lr = ln_pd + stats::normal_ln_from_parts(d2, ln_det_s, M) - rt.ln_kappa;
                     pairs.push((ti as u32, j, nu, ln_lr, d2));
@@ -1311,11 +1296,24 @@ impl Tracker {
         let is_gnn = matches!(self.method, Method::Gnn);
         owner.clear();
         owner.resize(zs.len(), u32::MAX);
+        // Per track with gated detections: (ln r, ln(1 − r P_D P_G)), the hypothesis weights'
+        // common terms, taken once here (pairs come track by track) and again in step 5.
+        ln_terms.clear();
+        ln_terms.resize(n_tracks, (f64::NAN, f64::NAN));
+        let ln_link_min = LINK_MIN.ln();
         for &(ti, j, _, ln_lr, _) in pairs.iter() {
-            let tr = &self.tracks[ti as usize];
-            let pd = prepared[ti as usize].as_ref().map_or(0.0, |p| p.pd);
-            let r = if is_gnn { 1.0 } else { tr.existence };
-            if !is_gnn && r.ln() + ln_lr - (1.0 - r * pd * pg).ln() < LINK_MIN.ln() {
+            let terms = &mut ln_terms[ti as usize];
+            if terms.1.is_nan() {
+                let tr = &self.tracks[ti as usize];
+                let pd = prepared[ti as usize].as_ref().map_or(0.0, |p| p.pd);
+                // JPDA weighs hypotheses with the existence probability (joint IPDA); GNN's
+                // hard decision uses the plain likelihood ratio against 1 − P_D P_G, so that a
+                // new track with a small existence still takes the detection that fits it.
+                let r = if is_gnn { 1.0 } else { tr.existence };
+                *terms = (r.ln(), (1.0 - r * pd * pg).ln());
+            }
+            let (ln_r, ln_miss) = *terms;
+            if !is_gnn && ln_r + ln_lr - ln_miss < ln_link_min {
                 continue;
             }
             let o = owner[j as usize];
@@ -1371,17 +1369,11 @@ impl Tracker {
             dets.clear();
             let mut n_cands = 0;
             for &ti in members.iter() {
-                let tr = &self.tracks[ti as usize];
-                let pd = prepared[ti as usize].as_ref().map_or(0.0, |p| p.pd);
-                // JPDA weighs hypotheses with the existence probability (joint IPDA); GNN's
-                // hard decision uses the plain likelihood ratio against 1 − P_D P_G, so that a
-                // new track with a small existence still takes the detection that fits it.
-                let r = if is_gnn { 1.0 } else { tr.existence };
-                let ln_miss = (1.0 - r * pd * pg).ln();
+                let (ln_r, ln_miss) = ln_terms[ti as usize];
                 let range =
                     first_pair[ti as usize]..first_pair[ti as usize] + pair_count[ti as usize];
                 lns.clear();
-                lns.extend(pairs[range.clone()].iter().map(|p| r.ln() + p.3));
+                lns.extend(pairs[range.clone()].iter().map(|p| ln_r + p.3));
                 let mx = lns.iter().copied().fold(ln_miss, f64::max);
                 let missed = (ln_miss - mx).exp();
                 if members.len() == 1 {
@@ -1684,6 +1676,88 @@ impl Tracker {
         let rt = &mut self.runtime[s];
         rt.health.push(health);
     }
+}
+
+/// Step 1 of a scan: per track, what gating needs ([`GateRecord`]; `None` for a track outside
+/// the sensor's field of view or whose innovation covariance is not positive definite), and
+/// the half-widths of the covered tracks' gate boxes.
+///
+/// With `share` (only for a linear measurement model, where S = H P Hᵀ + R, hence S⁻¹, det S
+/// and the half-width, depends on the covariance alone) a track whose covariance holds the same
+/// bits as that of the last track prepared in full takes that track's record with ẑ = H x and
+/// P_D of its own: the same numbers without the work. Candidates born in one scan that have
+/// gated nothing since carry identical covariances and sit next to each other, and in dense
+/// clutter they are most of the tracks.
+fn gate_records<const M: usize, Me: MeasurementModel<4, M>>(
+    tracks: &[Track],
+    rt: &SensorRuntime,
+    model: &Me,
+    gamma: f64,
+    share: bool,
+    prepared: &mut Vec<Option<GateRecord<M>>>,
+    half_widths: &mut Vec<f64>,
+) {
+    prepared.clear();
+    half_widths.clear();
+    let mut last_full: Option<usize> = None;
+    for (ti, tr) in tracks.iter().enumerate() {
+        let (x, y) = (tr.state.mean()[0], tr.state.mean()[1]);
+        if !rt.region.contains(x, y) {
+            prepared.push(None);
+            continue;
+        }
+        let pd = match rt.region {
+            Region::Sector { origin, .. } => rt.pd.at_range((x - origin[0]).hypot(y - origin[1])),
+            Region::Rect { .. } => rt.pd.at_range(0.0),
+        };
+        if share
+            && let Some(k) = last_full
+            && let Some(rec) = prepared[k]
+            && same_bits(tracks[k].state.cov(), tr.state.cov())
+        {
+            half_widths.push(rec.hw);
+            prepared.push(Some(GateRecord {
+                zhat: model.predict(tr.state.mean()),
+                pd,
+                ..rec
+            }));
+            continue;
+        }
+        let Ok(prep) = tr.state.prepare(model) else {
+            prepared.push(None);
+            continue;
+        };
+        last_full = Some(ti);
+        let hw = match rt.model {
+            Model::Cartesian(_) => (gamma * prep.s[(0, 0)].max(prep.s[(1, 1)])).sqrt(),
+            // |Δxy| ≤ |Δr| + r |Δb| (chord ≤ arc), with the gate's range and bearing extents.
+            Model::Polar(_) | Model::PolarRate(_) => {
+                let dr = (gamma * prep.s[(0, 0)]).sqrt();
+                let db = (gamma * prep.s[(1, 1)]).sqrt().min(std::f64::consts::PI);
+                dr + (prep.zhat[0] + dr) * db
+            }
+        };
+        half_widths.push(hw);
+        prepared.push(Some(GateRecord {
+            zhat: prep.zhat,
+            s_inv: prep.s_inv,
+            det_s: prep.det_parts(),
+            pd,
+            hw,
+        }));
+    }
+}
+
+/// Whether two matrices hold the same bits (so that every function of them gives the same
+/// result; `==` would equate 0.0 and −0.0).
+#[inline]
+fn same_bits<const R: usize, const C: usize>(
+    a: &nalgebra::SMatrix<f64, R, C>,
+    b: &nalgebra::SMatrix<f64, R, C>,
+) -> bool {
+    a.iter()
+        .zip(b.iter())
+        .fold(true, |same, (x, y)| same & (x.to_bits() == y.to_bits()))
 }
 
 fn mask(bits: u32) -> u32 {

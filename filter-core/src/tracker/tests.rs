@@ -529,3 +529,108 @@ fn restore_refuses_inconsistent_snapshots_naming_the_part() {
     refuse(&|s| s.sensors[0].detection_probability = 2.0, "sensors");
     Tracker::restore(TrackerConfig::default(), good).unwrap();
 }
+
+// A dense-clutter camera scene (200 false detections a scan over 4 km × 4 km, two movers):
+// after a few scans most tracks are candidates, and those born in one scan that have gated
+// nothing since share their covariance.
+fn dense_clutter_tracker(scans: u64) -> Tracker {
+    use rand::{Rng, SeedableRng};
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(7);
+    let mut t = Tracker::new(TrackerConfig::default(), vec![camera_with_clutter(200.0)]).unwrap();
+    for k in 0..scans {
+        let time = k as f64;
+        let mut pts = vec![(-800.0 + 6.0 * time, 100.0), (300.0, 900.0 - 4.0 * time)];
+        pts.extend((0..200).map(|_| {
+            (
+                rng.random_range(-2000.0..2000.0),
+                rng.random_range(-2000.0..2000.0),
+            )
+        }));
+        t.submit(scan(0, time, k, &pts)).unwrap();
+    }
+    t
+}
+
+// The shortcut of step 1 (a track whose covariance holds the same bits as the last one
+// prepared in full takes that record, with ẑ and P_D of its own) must give exactly what
+// `Gaussian::prepare` gives for every track; the scene must also exercise it.
+#[test]
+fn shared_gate_records_equal_full_preparation_bit_for_bit() {
+    let mut t = dense_clutter_tracker(6);
+    // Predict to the next scan time, as `apply` does before gating.
+    for tr in &mut t.tracks {
+        tr.state = t.motion.predict(&tr.state, 1.0).unwrap();
+    }
+    let rt = &t.runtime[0];
+    let Model::Cartesian(model) = rt.model else {
+        panic!("the camera is cartesian")
+    };
+    let gamma = rt.gate.threshold();
+    let (mut shared, mut full) = (Vec::new(), Vec::new());
+    let (mut hw_shared, mut hw_full) = (Vec::new(), Vec::new());
+    gate_records::<2, _>(
+        &t.tracks,
+        rt,
+        &model,
+        gamma,
+        true,
+        &mut shared,
+        &mut hw_shared,
+    );
+    gate_records::<2, _>(&t.tracks, rt, &model, gamma, false, &mut full, &mut hw_full);
+    let bits = |r: &Option<GateRecord<2>>| {
+        r.map(|r| {
+            let mut v: Vec<u64> = r
+                .zhat
+                .iter()
+                .chain(r.s_inv.iter())
+                .map(|x| x.to_bits())
+                .collect();
+            v.extend([r.det_s.0, r.det_s.1, r.pd, r.hw].map(f64::to_bits));
+            v
+        })
+    };
+    assert_eq!(shared.len(), t.tracks.len());
+    for (k, (a, b)) in shared.iter().zip(&full).enumerate() {
+        assert_eq!(bits(a), bits(b), "track {k}");
+    }
+    let hw_bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+    assert_eq!(hw_bits(&hw_shared), hw_bits(&hw_full));
+    // The shortcut applies to most of them: count neighbours with the same covariance bits.
+    let same = t
+        .tracks
+        .windows(2)
+        .filter(|w| same_bits(w[0].state.cov(), w[1].state.cov()))
+        .count();
+    assert!(
+        same * 2 > t.tracks.len(),
+        "{same} of {} tracks share their neighbour's covariance",
+        t.tracks.len()
+    );
+}
+
+#[test]
+fn same_bits_tells_signed_zeros_apart_and_is_finite_finds_any_bad_entry() {
+    let a = nalgebra::Matrix2::new(1.0, 0.0, 0.0, 1.0);
+    let mut b = a;
+    assert!(same_bits(&a, &b));
+    b[(0, 1)] = -0.0;
+    assert!(
+        !same_bits(&a, &b),
+        "0.0 and -0.0 compare equal but are not the same bits"
+    );
+    let g = Gaussian::new(Vector4::new(1.0, 2.0, 3.0, 4.0), Matrix4::identity()).unwrap();
+    assert!(g.is_finite());
+    for k in 0..20 {
+        for bad in [f64::NAN, f64::INFINITY, f64::NEG_INFINITY] {
+            let (mut mean, mut cov) = (*g.mean(), *g.cov());
+            if k < 4 {
+                mean[k] = bad;
+            } else {
+                cov[k - 4] = bad;
+            }
+            let h = Gaussian::from_parts(mean, cov);
+            assert!(!h.is_finite(), "entry {k} = {bad}");
+        }
+    }
+}
