@@ -259,6 +259,13 @@ const LATENCY_BUCKETS: [f64; 24] = [
     0.003, 0.004, 0.005, 0.007_5, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0,
 ];
 
+/// Buckets (s) of the engine's wait and step histograms: 0.1 ms apart up to 1 ms, where a
+/// large batch's parts lie, then coarser up to 1 s.
+const PART_BUCKETS: [f64; 24] = [
+    0.000_05, 0.000_1, 0.000_2, 0.000_3, 0.000_4, 0.000_5, 0.000_6, 0.000_7, 0.000_8, 0.000_9,
+    0.001, 0.001_25, 0.001_5, 0.002, 0.003, 0.005, 0.007_5, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0,
+];
+
 fn cluster_histogram() -> Histogram {
     // 1, 2, 4, ... 512 tracks
     Histogram::new(exponential_buckets(1.0, 2.0, 10))
@@ -306,6 +313,15 @@ pub struct Metrics {
     pub hypothesis_truncations: Family<SensorLabels, Counter>,
     /// Seconds from receiving a batch to publishing its frame.
     pub ingest_to_frame_latency: Histogram,
+    /// The first part of that latency: from receiving a batch to the engine starting on it
+    /// (decoding, admission, the engine queue and the engine thread's wake-up).
+    pub engine_wait: Histogram,
+    /// The tracker's share of it: one batch applied to the tracker (every scan it releases
+    /// from the reorder window), on the engine thread.
+    pub tracker_step: Histogram,
+    /// Track candidates after the last scan: detections no track explained, held internally
+    /// until their existence odds rise enough to report them (they are not in frames).
+    pub track_candidates: Gauge,
     /// Inputs waiting in the engine queue.
     pub queue_depth: Gauge,
     /// Scans held in the tracker's reorder buffer.
@@ -428,6 +444,21 @@ impl Metrics {
                 "ingest_to_frame_latency_seconds",
                 "Time from receiving a batch to publishing its frame",
                 Histogram::new(LATENCY_BUCKETS.iter().copied())
+            ),
+            engine_wait: reg!(
+                "engine_wait_seconds",
+                "Time from receiving a batch to the engine starting on it",
+                Histogram::new(PART_BUCKETS.iter().copied())
+            ),
+            tracker_step: reg!(
+                "tracker_step_seconds",
+                "Time the engine spends applying one batch to the tracker",
+                Histogram::new(PART_BUCKETS.iter().copied())
+            ),
+            track_candidates: reg!(
+                "track_candidates",
+                "Track candidates held internally (not reported) after the last scan",
+                Gauge::default()
             ),
             queue_depth: reg!(
                 "engine_queue_depth",

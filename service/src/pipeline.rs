@@ -287,7 +287,16 @@ impl Engine {
     ) -> Result<(), filter_core::Error> {
         let key = (scan.sensor, scan.tag);
         let sensor = scan.sensor;
+        let start = Instant::now();
+        if let Some(t) = received {
+            self.metrics
+                .engine_wait
+                .observe(start.saturating_duration_since(t).as_secs_f64());
+        }
         let pictures = self.tracker.submit(scan)?;
+        self.metrics
+            .tracker_step
+            .observe(start.elapsed().as_secs_f64());
         if let Some(t) = received {
             self.received.insert(key, t);
         }
@@ -376,6 +385,7 @@ impl Engine {
                     })
                     .set(n as i64);
             }
+            m.track_candidates.set(s.candidates as i64);
             m.frames.inc();
             let key = (picture.sensor, picture.tag);
             let received = self.received.remove(&key);

@@ -32,6 +32,13 @@ async fn metrics_count_what_was_sent() {
             .await
             .unwrap();
         assert_eq!(reply, json!({"ack": seq}));
+        if seq == 1 {
+            // On an empty picture each of the two detections (300 m and 40° apart) is explained
+            // by no track, so each starts a candidate (docs/metrics.md), none reported yet.
+            next_json(&mut frames).await.unwrap();
+            let s = scrape(&server.addr).await.unwrap();
+            assert_eq!(sample(&s, "plotweave_track_candidates", &[]), Some(2.0));
+        }
     }
     let reply = send_batch(&mut ws, &radar_batch(6, t0 + 7.0, &[]))
         .await
@@ -42,7 +49,7 @@ async fn metrics_count_what_was_sent() {
         error_code(&next_json(&mut ws).await.unwrap()),
         Some("malformed_json")
     );
-    for _ in 0..plan.len() {
+    for _ in 1..plan.len() {
         next_json(&mut frames).await.unwrap();
     }
 
@@ -86,6 +93,17 @@ async fn metrics_count_what_was_sent() {
     assert_eq!(
         get("plotweave_ingest_to_frame_latency_seconds_count", &[]),
         4.0
+    );
+    // Its parts, one observation per applied batch: the wait before the engine starts on a
+    // batch and the tracker step both lie inside the ingest-to-frame span.
+    assert_eq!(get("plotweave_engine_wait_seconds_count", &[]), 4.0);
+    assert_eq!(get("plotweave_tracker_step_seconds_count", &[]), 4.0);
+    let total = get("plotweave_ingest_to_frame_latency_seconds_sum", &[]);
+    let parts = get("plotweave_engine_wait_seconds_sum", &[])
+        + get("plotweave_tracker_step_seconds_sum", &[]);
+    assert!(
+        parts > 0.0 && parts <= total,
+        "wait + step = {parts} s against ingest-to-frame {total} s"
     );
     assert_eq!(get("plotweave_sensor_clutter_rate_configured", &radar), 2.0);
     assert_eq!(

@@ -379,12 +379,28 @@ fn wake_jitter(span: Duration) -> (f64, f64, f64, f64) {
     )
 }
 
-/// `(le, cumulative count)` of the server's ingest-to-frame latency histogram.
-fn latency_buckets(scrape: &prometheus_parse::Scrape) -> Vec<(f64, f64)> {
+/// The server's latency histograms: the whole ingest-to-frame span and its two measured parts.
+const SERVER_HISTOGRAMS: [(&str, &str); 3] = [
+    (
+        "plotweave_ingest_to_frame_latency_seconds",
+        "ingest-to-frame",
+    ),
+    (
+        "plotweave_engine_wait_seconds",
+        "  of which waiting for the engine",
+    ),
+    (
+        "plotweave_tracker_step_seconds",
+        "  of which the tracker step",
+    ),
+];
+
+/// `(le, cumulative count)` of the server's histogram `name`.
+fn latency_buckets(scrape: &prometheus_parse::Scrape, name: &str) -> Vec<(f64, f64)> {
     scrape
         .samples
         .iter()
-        .find(|s| s.metric == "plotweave_ingest_to_frame_latency_seconds")
+        .find(|s| s.metric == name)
         .and_then(|s| match &s.value {
             prometheus_parse::Value::Histogram(h) => {
                 Some(h.iter().map(|b| (b.less_than, b.count)).collect())
@@ -458,17 +474,19 @@ async fn main() -> Result<()> {
     let rss = server.pid().and_then(peak_rss_mib);
     // The server's own view: its ingest-to-frame latency histogram over both phases.
     if let Ok(scrape) = plotweave_tests::scrape(&addr).await {
-        let buckets = latency_buckets(&scrape);
+        let buckets = latency_buckets(&scrape, SERVER_HISTOGRAMS[0].0);
         for (le, n) in &buckets {
             println!("server plotweave_ingest_to_frame_latency_seconds le={le} {n}");
         }
-        if let (Some(p50), Some(p99)) = (bucket_bound(&buckets, 0.5), bucket_bound(&buckets, 0.99))
-        {
-            println!(
-                "server ingest-to-frame latency (its histogram, both phases): p50 <= {:.2} ms, p99 <= {:.2} ms",
-                p50 * 1e3,
-                p99 * 1e3
-            );
+        for (name, what) in SERVER_HISTOGRAMS {
+            let b = latency_buckets(&scrape, name);
+            if let (Some(p50), Some(p99)) = (bucket_bound(&b, 0.5), bucket_bound(&b, 0.99)) {
+                println!(
+                    "server {what} (its histogram, both phases): p50 <= {:.2} ms, p99 <= {:.2} ms",
+                    p50 * 1e3,
+                    p99 * 1e3
+                );
+            }
         }
     }
     let det_rate = full.detections as f64 / full.seconds;
@@ -522,7 +540,7 @@ mod tests {
         ];
         let scrape = prometheus_parse::Scrape::parse(lines.iter().map(|l| Ok(l.to_string())))
             .expect("valid exposition text");
-        let b = super::latency_buckets(&scrape);
+        let b = super::latency_buckets(&scrape, "plotweave_ingest_to_frame_latency_seconds");
         assert_eq!(b.len(), 4);
         assert_eq!(super::bucket_bound(&b, 0.5), Some(0.0015));
         assert_eq!(super::bucket_bound(&b, 0.99), Some(0.002));
