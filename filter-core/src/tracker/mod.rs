@@ -1297,7 +1297,7 @@ impl Tracker {
         owner.clear();
         owner.resize(zs.len(), u32::MAX);
         // Per track with gated detections: (ln r, ln(1 − r P_D P_G)), the hypothesis weights'
-        // common terms, taken once here (pairs come track by track) and again in step 5.
+        // common terms, taken once here (pairs come track by track) and read again in step 5.
         ln_terms.clear();
         ln_terms.resize(n_tracks, (f64::NAN, f64::NAN));
         let ln_link_min = LINK_MIN.ln();
