@@ -85,8 +85,8 @@ impl<const N: usize> Gaussian<N> {
     /// Checks that the state is still usable (finite); used after long chains of updates.
     #[inline]
     pub fn is_finite(&self) -> bool {
-        // `&` rather than `&&`/`all`: no branch per element, so the check vectorises (the
-        // tracker runs it on every track every scan).
+        // `&` rather than `&&`/`all`: no branch per element (the tracker runs this on every
+        // track every scan).
         let finite = |s: &[f64]| s.iter().fold(true, |ok, v| ok & v.is_finite());
         finite(self.mean.as_slice()) & finite(self.cov.as_slice())
     }

@@ -288,16 +288,14 @@ impl Engine {
         let key = (scan.sensor, scan.tag);
         let sensor = scan.sensor;
         let start = Instant::now();
-        if let Some(t) = received {
-            self.metrics
-                .engine_wait
-                .observe(start.saturating_duration_since(t).as_secs_f64());
-        }
         let pictures = self.tracker.submit(scan)?;
-        self.metrics
-            .tracker_step
-            .observe(start.elapsed().as_secs_f64());
+        // Live batches only (as the ingest-to-frame latency): not the offline run, nor the
+        // recording re-applied after a restore.
         if let Some(t) = received {
+            let m = &self.metrics;
+            m.engine_wait
+                .observe(start.saturating_duration_since(t).as_secs_f64());
+            m.tracker_step.observe(start.elapsed().as_secs_f64());
             self.received.insert(key, t);
         }
         self.emit(pictures, out);

@@ -1680,7 +1680,8 @@ impl Tracker {
 
 /// Step 1 of a scan: per track, what gating needs ([`GateRecord`]; `None` for a track outside
 /// the sensor's field of view or whose innovation covariance is not positive definite), and
-/// the half-widths of the covered tracks' gate boxes.
+/// the half-widths (m, in the site plane) of the covered tracks' gate boxes. `gamma` is the
+/// gate's threshold on d² (the chi-square quantile of the gate probability).
 ///
 /// With `share` (only for a linear measurement model, where S = H P Hᵀ + R, hence S⁻¹, det S
 /// and the half-width, depends on the covariance alone) a track whose covariance holds the same
@@ -1697,6 +1698,10 @@ fn gate_records<const M: usize, Me: MeasurementModel<4, M>>(
     prepared: &mut Vec<Option<GateRecord<M>>>,
     half_widths: &mut Vec<f64>,
 ) {
+    debug_assert!(
+        !share || matches!(rt.model, Model::Cartesian(_)),
+        "gate records are shared only under a linear measurement model"
+    );
     prepared.clear();
     half_widths.clear();
     let mut last_full: Option<usize> = None;

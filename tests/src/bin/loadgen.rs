@@ -362,8 +362,10 @@ async fn phase(addr: &str, args: &Args, pace: Option<f64>, seq0: u64) -> Result<
 /// Ticks every `interval` seconds until `deadline`, from a thread of their own: tokio's timer
 /// wheel has a resolution of 1 ms, so a pace of 550 batches/s slept on it sends on millisecond
 /// ticks, with gaps of 1 and 2 ms instead of 1.82. A tick that comes late (the thread was not
-/// scheduled) is followed by the ones due meanwhile at once, as an open-loop load must; at most
-/// `PACE_BACKLOG` ticks wait for a sender that falls behind.
+/// scheduled) is followed by the ones due meanwhile at once, as an open-loop load must. At most
+/// `PACE_BACKLOG` ticks wait for a sender that falls behind; when that many wait, the timer
+/// thread blocks until the sender takes one, and then sends the ticks it owes at once (the
+/// backlog is bounded in memory, not in time).
 fn pace_ticks(interval: f64, deadline: Instant) -> tokio::sync::mpsc::Receiver<()> {
     const PACE_BACKLOG: usize = 1024;
     let (tx, rx) = tokio::sync::mpsc::channel(PACE_BACKLOG);
