@@ -300,13 +300,16 @@ async fn phase(addr: &str, args: &Args, pace: Option<f64>, seq0: u64) -> Result<
             let mut acked = 0u64;
             let mut in_flight = 0usize;
             let mut ticks = pace.map(|p| pace_ticks(args.sensors as f64 / p, deadline));
+            // The pace thread stops at the deadline; from then on nothing more is sent.
+            let mut paced_out = false;
             loop {
-                while in_flight < args.window && Instant::now() < deadline {
+                while in_flight < args.window && !paced_out && Instant::now() < deadline {
                     // Made before its tick, so that making it does not delay the send.
                     let text = batch(&args, k, seq);
                     if let Some(t) = ticks.as_mut()
                         && t.recv().await.is_none()
                     {
+                        paced_out = true;
                         break;
                     }
                     sent.lock().unwrap().insert((k, seq), Instant::now());
@@ -500,7 +503,8 @@ async fn main() -> Result<()> {
     };
     let rate = full.batches as f64 / full.seconds;
     let rss = server.pid().and_then(peak_rss_mib);
-    // The server's own view: its ingest-to-frame latency histogram over both phases.
+    // The server's own view: its ingest-to-frame latency histogram over both phases, and the
+    // two parts of it that the engine measures.
     if let Ok(scrape) = plotweave_tests::scrape(&addr).await {
         let buckets = latency_buckets(&scrape, SERVER_HISTOGRAMS[0].0);
         for (le, n) in &buckets {
